@@ -1,0 +1,172 @@
+"""Canonical per-layer weights: the one structure every checkpoint family is read into.
+
+Conventions (METHODS, "Notation"): row vectors, ``x W``. ``V`` vocabulary, ``d`` model
+width, ``H`` query heads per layer, ``dh`` head width. Grouped-query checkpoints are
+expanded on reading: ``W_K``/``W_V`` always hold one slice per *query* head, and
+``Attention.kv_heads`` records how many distinct key/value heads the checkpoint had.
+
+Nothing downstream of this module knows which family a model came from.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field, fields
+
+import torch
+
+from .errors import CompositionError
+
+
+@dataclass(frozen=True)
+class Norm:
+    """A normalisation layer. ``kind`` is ``layernorm``, ``rmsnorm`` or ``identity``."""
+
+    kind: str
+    weight: torch.Tensor | None  # [d] gamma (None: ones)
+    bias: torch.Tensor | None  # [d] beta (None: zeros; RMSNorm has none)
+    eps: float = 1e-5
+
+
+@dataclass(frozen=True)
+class Rotary:
+    """Rotary position embedding on the first ``dims`` dimensions of each head.
+
+    ``style`` is ``split-half`` (pairs ``(i, i + dims/2)``) or ``interleaved``
+    (pairs ``(2i, 2i+1)``). ``inv_freq`` holds one frequency per pair, scaling included.
+    """
+
+    dims: int
+    style: str
+    inv_freq: torch.Tensor  # [dims // 2]
+
+
+@dataclass(frozen=True)
+class Attention:
+    W_Q: torch.Tensor  # [H, d, dh]
+    W_K: torch.Tensor  # [H, d, dh]  (expanded per query head)
+    W_V: torch.Tensor  # [H, d, dh]  (expanded per query head)
+    W_O: torch.Tensor  # [H, dh, d]
+    b_Q: torch.Tensor  # [H, dh]
+    b_K: torch.Tensor  # [H, dh]
+    b_V: torch.Tensor  # [H, dh]
+    b_O: torch.Tensor  # [d]
+    kv_heads: int  # distinct key/value heads in the checkpoint (== H without grouping)
+
+
+@dataclass(frozen=True)
+class MLP:
+    """``out = act(x W_in + b_in) [* (x W_gate)] W_out + b_out``; gated when ``W_gate`` is set."""
+
+    W_in: torch.Tensor  # [d, m]
+    b_in: torch.Tensor  # [m]
+    W_out: torch.Tensor  # [m, d]
+    b_out: torch.Tensor  # [d]
+    activation: str  # gelu | gelu-tanh | relu | silu
+    W_gate: torch.Tensor | None = None  # [d, m]; gated MLP: act(x W_gate) * (x W_in)
+
+
+@dataclass(frozen=True)
+class Layer:
+    attn_norm: Norm  # N_l: the norm in front of attention (post-norm: after it)
+    attn: Attention
+    mlp_norm: Norm  # N_2l: the norm in front of the MLP (post-norm: after it)
+    mlp: MLP
+
+
+@dataclass(frozen=True)
+class Weights:
+    """A whole model in canonical form.
+
+    ``placement``: ``pre`` (pre-norm decoder), ``parallel`` (pre-norm, attention and MLP
+    read the same residual), ``post`` (post-norm encoder: ``x = N(x + sublayer(x))``).
+    """
+
+    family: str
+    W_E: torch.Tensor  # [V, d]
+    W_pos: torch.Tensor | None  # [P, d] learned positions, None for rotary families
+    W_U: torch.Tensor  # [d, V] unembedding (readout)
+    final_norm: Norm  # N_f (identity for post-norm encoders)
+    layers: tuple[Layer, ...]
+    placement: str = "pre"
+    attn_scale: float | None = None  # None: 1/sqrt(dh)
+    rotary: Rotary | None = None
+    embed_norm: Norm | None = None  # post-norm encoders: LayerNorm of the embeddings
+    W_type: torch.Tensor | None = None  # [d] token-type 0 row, added to every embedding
+    readout: str = "tied"  # tied | lm-head | input-embedding (no LM head in checkpoint)
+    tensors_used: tuple[str, ...] = ()
+    tensors_ignored: tuple[str, ...] = ()
+    source: str = ""
+    config: dict = field(default_factory=dict)
+
+    @property
+    def n_layers(self) -> int:
+        return len(self.layers)
+
+    @property
+    def n_heads(self) -> int:
+        return self.layers[0].attn.W_Q.shape[0]
+
+    @property
+    def d_model(self) -> int:
+        return self.W_E.shape[1]
+
+    @property
+    def d_head(self) -> int:
+        return self.layers[0].attn.W_Q.shape[2]
+
+    @property
+    def vocab_size(self) -> int:
+        return self.W_E.shape[0]
+
+    @property
+    def scale(self) -> float:
+        return self.attn_scale if self.attn_scale is not None else self.d_head**-0.5
+
+    def fingerprint(self) -> str:
+        """SHA-256 over every canonical tensor (name, shape, dtype, bytes) and the structure."""
+        h = hashlib.sha256()
+        h.update(f"{self.placement}|{self.attn_scale}|{self.readout}".encode())
+        for name, t in _named_tensors(self):
+            t = t.detach().contiguous().cpu()
+            h.update(f"{name}|{tuple(t.shape)}|{t.dtype}".encode())
+            h.update(t.view(torch.uint8).numpy().tobytes() if t.numel() else b"")
+        if self.rotary is not None:
+            h.update(f"rotary|{self.rotary.dims}|{self.rotary.style}".encode())
+        return h.hexdigest()
+
+    def check_finite(self) -> None:
+        """Refuse NaN or Inf in any weight, naming the tensor."""
+        for name, t in _named_tensors(self):
+            if t.is_floating_point() and not torch.isfinite(t).all():
+                raise CompositionError(
+                    f"weight {name} of {self.source or 'the checkpoint'} contains NaN or Inf values."
+                )
+
+
+def _named_tensors(w: Weights):
+    """Yield ``(name, tensor)`` for every tensor of ``w`` in a fixed order."""
+    for f in ("W_E", "W_pos", "W_U", "W_type"):
+        t = getattr(w, f)
+        if t is not None:
+            yield f, t
+    yield from _norm_tensors("final_norm", w.final_norm)
+    if w.embed_norm is not None:
+        yield from _norm_tensors("embed_norm", w.embed_norm)
+    if w.rotary is not None:
+        yield "rotary.inv_freq", w.rotary.inv_freq
+    for i, layer in enumerate(w.layers):
+        yield from _norm_tensors(f"layers.{i}.attn_norm", layer.attn_norm)
+        yield from _norm_tensors(f"layers.{i}.mlp_norm", layer.mlp_norm)
+        for part in (layer.attn, layer.mlp):
+            for f in fields(part):
+                t = getattr(part, f.name)
+                if isinstance(t, torch.Tensor):
+                    yield f"layers.{i}.{f.name}", t
+
+
+def _norm_tensors(prefix: str, n: Norm):
+    if n.weight is not None:
+        yield f"{prefix}.weight", n.weight
+    if n.bias is not None:
+        yield f"{prefix}.bias", n.bias
