@@ -10,13 +10,14 @@ import click
 import numpy as np
 
 from .errors import CompositionError
-from .factors import ORIENTATIONS
+from .factors import ORIENTATIONS, QUERY_PARTS, SIDES
 from .scan import ScanOptions, run_scan
 from .scanfile import CAUTION
 from .stats import DEFAULT_FDR, DEFAULT_MIN_EFFECT, LABEL_NOT_COMPUTED
 from .tables import TABLES
 
 _LABEL_WORDS = {1: "attention-raising", -1: "attention-lowering", 0: "neutral"}
+_VALUE_WORDS = {1: "copies through", -1: "suppresses", 0: "neutral"}  # --side value: diagonal high / low
 
 
 class _Group(click.Group):
@@ -77,14 +78,20 @@ def scan_options(f):
                      help="False discovery rate for labels, Benjamini-Hochberg over all pairs."),
         click.option("--min-effect", type=float, default=DEFAULT_MIN_EFFECT, show_default=True,
                      help="Smallest |mean percentile - 0.5| that earns a label."),
+        click.option("--side", type=click.Choice(SIDES), default="query", show_default=True,
+                     help="Which path the writer feeds: the responder's query, its key, or its value (moved on to the logits)."),
+        click.option("--query-part", type=click.Choice(QUERY_PARTS), default="full", show_default=True,
+                     help="Query side only: the whole write, its projection on the token's unembedding direction, or the rest."),
     ]):
         f = opt(f)
     return f
 
 
-def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect) -> ScanOptions:
+def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect,
+                  side="query", query_part="full") -> ScanOptions:
     return ScanOptions(table=table, position=_position(position), orientation=orientation, k=_ks(ks),
-                       fdr=fdr, min_effect=min_effect, writers=writers, responders=responders)
+                       fdr=fdr, min_effect=min_effect, writers=writers, responders=responders,
+                       side=side, query_part=query_part)
 
 
 @main.command()
@@ -125,15 +132,20 @@ def _print_findings(result) -> None:
     lab = result.label
     found = [tuple(int(i) for i in ix) for ix in np.argwhere((lab != 0) & (lab != LABEL_NOT_COMPUTED))]
     ks = list(result.k)
+    side, part = result.attrs.get("side", "query"), result.attrs.get("query_part", "full")
+    words = _VALUE_WORDS if side == "value" else _LABEL_WORDS
+    click.echo(f"side {side}" + (f", query part {part}" if part != "full" else ""))
     click.echo(f"labelled responders (FDR {result.attrs['fdr']}, |mean percentile - 0.5| >= "
                f"{result.attrs['min_effect']}): {len(found)} of {int(result.done.sum())} pairs")
+    fraction = part != "full" and "write_fraction" in result.arrays  # METHODS §3b: show it beside the shares
     if found:
         click.echo(f"  {'writer':>7} {'responder':>9}  {'label':<19} {'mean pct':>8} {f'top-{ks[0]}':>7} "
-                   f"{f'bottom-{ks[0]}':>9} {'q-value':>9}")
+                   f"{f'bottom-{ks[0]}':>9} {'q-value':>9}" + (f" {'write fraction':>14}" if fraction else ""))
     for ix in sorted(found, key=lambda i: -abs(result.mean_percentile[i] - 0.5)):
-        click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {_LABEL_WORDS[int(lab[ix])]:<19} "
+        click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {words[int(lab[ix])]:<19} "
                    f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
-                   f"{result.bottom_share[ix][0]:9.3f} {result.q_value[ix]:9.1e}")
+                   f"{result.bottom_share[ix][0]:9.3f} {result.q_value[ix]:9.1e}"
+                   + (f" {result.write_fraction[ix]:14.3f}" if fraction else ""))
     click.echo(f"note: {CAUTION}")
 
 

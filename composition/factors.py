@@ -79,3 +79,175 @@ def query_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.
     if orientation == "column":
         return K_responder, Q
     raise CompositionError(f"--orientation {orientation!r} is not one of: {', '.join(ORIENTATIONS)}.")
+
+
+# ---------------------------------------------------------------------------
+# Other sides and the query side's mediation parts (METHODS §3b)
+#
+#   key side    S[j, t] = q_R(j) . k_U(t)   rows: query tokens j, columns: written tokens t
+#               q_R = N_lR(T) W_Q^R + b_Q^R                       [V, dh] once per responder
+#               k_U = A_U (W_O^U Lin(N_lR) W_K^R)                 [V, dh] per pair
+#   value side  F[t, u] = o_U(t) Lin(N_lR) W_V^R W_O^R Lin(N_f) W_U[:, u]
+#               left  = A_U (W_O^U Lin(N_lR) W_V^R)               [V, dh] per pair
+#               right = (W_O^R Lin(N_f) W_U)^T                    [V, dh] once per responder
+#   query parts o_U(t) = alpha_t u_t + rest_t,  u_t = Lin(N_f) W_U[:, t] / |.|,  alpha_t = o_U(t) . u_t
+#               unembed: left = alpha * (U Lin(N_lR) W_Q^R)       [V, dh]: rows of a fixed matrix, signed scales
+#               rest:    left = A_U C_UR - unembed left           [V, dh]: a difference of two factors
+# Nothing [V, V] is ever formed.
+# ---------------------------------------------------------------------------
+
+SIDES = ("query", "key", "value")
+QUERY_PARTS = ("full", "unembed", "rest")
+
+
+def _oriented(row_left: torch.Tensor, row_right: torch.Tensor, orientation: str) -> tuple[torch.Tensor, torch.Tensor]:
+    """Row orientation as given; column orientation swaps the factors. # [V, r], [V, r] -> [V, r], [V, r]"""
+    if orientation == "row":
+        return row_left, row_right
+    if orientation == "column":
+        return row_right, row_left
+    raise CompositionError(f"--orientation {orientation!r} is not one of: {', '.join(ORIENTATIONS)}.")
+
+
+def _check_layers(writer_layer: int, responder_layer: int) -> None:
+    if responder_layer <= writer_layer:
+        raise CompositionError(
+            f"responder layer {responder_layer} must come after writer layer {writer_layer}."
+        )
+
+
+def _writer_read(w: Weights, writer_layer: int, writer_head: int, responder_layer: int, which: str,
+                 rotation: torch.Tensor | None = None) -> torch.Tensor:
+    """``W_O^U Lin(N_lR) W^R [M^T]`` for every responder head, W one of W_K/W_V. # -> [H_R, dh, dh]"""
+    _check_layers(writer_layer, responder_layer)
+    W_O = w.layers[writer_layer].attn.W_O[writer_head].double()  # [dh, d]
+    lin = norm_linear_part(input_norm(w, responder_layer), w.d_model)  # [d, d]
+    W = getattr(w.layers[responder_layer].attn, which).double()  # [H, d, dh]
+    out = torch.einsum("ed,df,hfg->heg", W_O, lin, W)  # [H, dh, dh]
+    if rotation is not None:
+        out = out @ rotation.double().transpose(-1, -2)  # [H, dh, dh]
+    return out
+
+
+def responder_queries(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
+    """Key side: the full token-table query ``N_lR(T) W_Q^R + b_Q^R`` of every head. # table [V, d] -> [H, V, dh]"""
+    b_Q = w.layers[layer].attn.b_Q.double()  # [H, dh]
+    return _normed_projection(w, table, layer, "W_Q") + b_Q[:, None, :]  # [H, V, dh]
+
+
+def key_middles(w: Weights, writer_layer: int, writer_head: int, responder_layer: int,
+                rotation: torch.Tensor | None = None) -> torch.Tensor:
+    """Key side: ``W_O^U Lin(N_lR) W_K^R`` for every responder head of a layer. # -> [H_R, dh, dh]
+
+    The written-token keys are ``A_U @ middle``. ``rotation``: an optional averaged rotary matrix
+    ``M`` ``[dh, dh]`` (or ``[H_R, dh, dh]``) in the row-vector form of the score ``q M k^T``; it is
+    folded into the key as ``k M^T``.
+    """
+    return _writer_read(w, writer_layer, writer_head, responder_layer, "W_K", rotation)
+
+
+def key_side(A_writer: torch.Tensor, middle: torch.Tensor, Q_responder: torch.Tensor,
+             orientation: str = "row") -> tuple[torch.Tensor, torch.Tensor]:
+    """The key side's two factors, ``S[j, t] = Q_R[j] . (A_U middle)[t]``.
+
+    # A_writer [V, dh], middle [dh, dh], Q_responder [V, dh] -> left [V, dh], right [V, dh]
+    Row orientation (default): ``(Q_R, A_U middle)``, a query token chooses among written tokens
+    (assumes a common residual scale at every source position). Column orientation:
+    ``(A_U middle, Q_R)``, a written token across query tokens (free of the keys' scales).
+    """
+    return _oriented(Q_responder, A_writer @ middle, orientation)  # [V, dh], [V, dh]
+
+
+def value_middles(w: Weights, writer_layer: int, writer_head: int, responder_layer: int) -> torch.Tensor:
+    """Value side: ``W_O^U Lin(N_lR) W_V^R`` for every responder head of a layer. # -> [H_R, dh, dh]"""
+    return _writer_read(w, writer_layer, writer_head, responder_layer, "W_V")
+
+
+def responder_readouts(w: Weights, layer: int) -> torch.Tensor:
+    """Value side: ``(W_O^R Lin(N_f) W_U)^T`` for every head of ``layer``. # -> [H, V, dh]"""
+    W_O = w.layers[layer].attn.W_O.double()  # [H, dh, d]
+    lin = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
+    W_U = w.W_U.double()  # [d, V]
+    return torch.einsum("hed,dv->hve", W_O @ lin, W_U)  # [H, V, dh]
+
+
+def value_side(A_writer: torch.Tensor, middle: torch.Tensor, readout: torch.Tensor,
+               orientation: str = "row") -> tuple[torch.Tensor, torch.Tensor]:
+    """The value side's two factors, ``F[t, u] = (A_U middle)[t] . readout[u]``, row orientation only.
+
+    # A_writer [V, dh], middle [dh, dh], readout [V, dh] -> left [V, dh], right [V, dh]
+    """
+    if orientation != "row":
+        raise CompositionError("--side value ranks within rows only (fixed written token); use --orientation row.")
+    return A_writer @ middle, readout  # [V, dh], [V, dh]
+
+
+def unembed_directions(w: Weights) -> torch.Tensor:
+    """Each token's effective unembedding direction ``u_t``: ``Lin(N_f) W_U[:, t]``, normalised.
+
+    # -> [V, d] float64, one unit row per token (a zero column of W_U gives a zero row)
+    """
+    lin = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
+    U = (lin @ w.W_U.double()).T  # [V, d]
+    n = U.norm(dim=1, keepdim=True)  # [V, 1]
+    return U / torch.where(n > 0, n, torch.ones_like(n))  # [V, d]
+
+
+def unembed_coefficients(A_writer: torch.Tensor, W_O_writer: torch.Tensor, directions: torch.Tensor) -> torch.Tensor:
+    """``alpha_t = o_U(t) . u_t``, the signed length of the write along its token's direction.
+
+    # A_writer [V, dh], W_O_writer [dh, d], directions [V, d] -> [V]
+    """
+    return (A_writer * (directions @ W_O_writer.double().T)).sum(1)  # [V]
+
+
+def unembed_queries(w: Weights, directions: torch.Tensor, layer: int,
+                    rotation: torch.Tensor | None = None) -> torch.Tensor:
+    """``u_t Lin(N_lR) W_Q^R [M]`` for every head of ``layer``: the query of a unit write along ``u_t``.
+
+    # directions [V, d] -> [H, V, dh]; ``rotation`` as in :func:`key_middles`, folded as ``q M``.
+    """
+    lin = norm_linear_part(input_norm(w, layer), w.d_model)  # [d, d]
+    W_Q = w.layers[layer].attn.W_Q.double()  # [H, d, dh]
+    out = torch.einsum("vd,hde->hve", directions @ lin, W_Q)  # [H, V, dh]
+    if rotation is not None:
+        out = out @ rotation.double()  # [H, V, dh]
+    return out
+
+
+def query_part_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.Tensor, part: str,
+                    alpha: torch.Tensor | None = None, unembed_query: torch.Tensor | None = None,
+                    orientation: str = "row") -> tuple[torch.Tensor, torch.Tensor]:
+    """The query side's factors with the write replaced by one of its parts.
+
+    # A_writer [V, dh], middle [dh, dh], K_responder [V, dh], alpha [V], unembed_query [V, dh]
+    # -> left [V, dh], right [V, dh]
+    ``full``: the whole write (as :func:`query_side`); ``unembed``: ``alpha_t u_t``, i.e. the rows of
+    ``unembed_query`` scaled by ``alpha``; ``rest``: the full query factor minus the unembed one.
+    """
+    if part not in QUERY_PARTS:
+        raise CompositionError(f"--query-part {part!r} is not one of: {', '.join(QUERY_PARTS)}.")
+    if part == "full":
+        return query_side(A_writer, middle, K_responder, orientation)
+    projected = alpha[:, None] * unembed_query  # [V, dh]
+    left = projected if part == "unembed" else A_writer @ middle - projected  # [V, dh]
+    return _oriented(left, K_responder, orientation)
+
+
+def write_fraction(A_writer: torch.Tensor, W_O_writer: torch.Tensor, part: str,
+                   alpha: torch.Tensor | None = None) -> float:
+    """Mean over written tokens of ``|o_part(t)|^2 / |o_U(t)|^2`` (METHODS §3b); tokens with a zero write are skipped.
+
+    # A_writer [V, dh], W_O_writer [dh, d], alpha [V] -> float
+    """
+    if part not in QUERY_PARTS:
+        raise CompositionError(f"--query-part {part!r} is not one of: {', '.join(QUERY_PARTS)}.")
+    W_O = W_O_writer.double()  # [dh, d]
+    total = ((A_writer @ (W_O @ W_O.T)) * A_writer).sum(1)  # [V] |o_U(t)|^2
+    keep = total > 0
+    if not bool(keep.any()):
+        return float("nan")
+    if part == "full":
+        return 1.0
+    share = alpha[keep] ** 2 / total[keep]  # [V'] fraction along u_t
+    return float((share if part == "unembed" else 1.0 - share).mean())

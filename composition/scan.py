@@ -22,6 +22,9 @@ from . import __version__
 from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
+from .factors import (QUERY_PARTS, SIDES, key_middles, key_side, query_part_side, responder_queries,
+                      responder_readouts, unembed_coefficients, unembed_directions, unembed_queries,
+                      value_middles, value_side, write_fraction)
 from .ranks import diagonal_midranks
 from .scanfile import CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, empty_pairs, load_scan, write_scan
 from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
@@ -44,6 +47,8 @@ class ScanOptions:
     writers: str | None = None  # e.g. "1,2.3": whole layers or layer.head labels
     responders: str | None = None
     block_rows: int = 256
+    side: str = "query"  # query | key | value (METHODS §3, §3b)
+    query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
 
     def validate(self) -> None:
         if self.table not in TABLES:
@@ -56,6 +61,17 @@ class ScanOptions:
             raise CompositionError("--fdr must lie strictly between 0 and 1.")
         if not 0 <= self.min_effect < 0.5:
             raise CompositionError("--min-effect must lie in [0, 0.5).")
+        self._validate_side()
+
+    def _validate_side(self) -> None:
+        if self.side not in SIDES:
+            raise CompositionError(f"--side {self.side!r} is not one of: {', '.join(SIDES)}.")
+        if self.query_part not in QUERY_PARTS:
+            raise CompositionError(f"--query-part {self.query_part!r} is not one of: {', '.join(QUERY_PARTS)}.")
+        if self.query_part != "full" and self.side != "query":
+            raise CompositionError(f"--query-part {self.query_part} applies to --side query only, not --side {self.side}.")
+        if self.side == "value" and self.orientation != "row":
+            raise CompositionError("--side value ranks within rows only (fixed written token); use --orientation row.")
 
 
 @dataclass
@@ -105,7 +121,6 @@ def result_options(options: ScanOptions) -> dict:
         d.pop(key)
     d["k"] = [int(k) for k in options.k]
     d["position"] = "none" if options.position is None else str(options.position)
-    d["side"] = "query"
     return d
 
 
@@ -131,6 +146,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     for unit in units:
         for (u, r), stats in compute_unit(factors, unit, options).items():
             _store(arrays, u + r, stats)
+            arrays["write_fraction"][u + r] = factors.write_fraction(u, options.query_part)
             done += 1
         if progress:
             progress(done, len(pairs))
@@ -177,21 +193,78 @@ class _FactorCache:
             self._keys = (layer, responder_keys(self.w, self.table, layer))
         return self._keys[1]
 
+    # --- other sides and query parts (METHODS §3b): built only when a scan needs them
+    def _layer_factor(self, name: str, layer: int, build):
+        held = self.__dict__.get(name)
+        if held is None or held[0] != layer:
+            held = (layer, build())
+            self.__dict__[name] = held
+        return held[1]
+
+    def queries(self, layer: int):  # -> [H, V, dh]  full token-table queries (key side)
+        return self._layer_factor("_queries", layer, lambda: responder_queries(self.w, self.table, layer))
+
+    def readouts(self, layer: int):  # -> [H, V, dh]  (W_O Lin(N_f) W_U)^T (value side)
+        return self._layer_factor("_readouts", layer, lambda: responder_readouts(self.w, layer))
+
+    def directions(self):  # -> [V, d]  unit effective unembedding directions
+        return self._layer_factor("_directions", -1, lambda: unembed_directions(self.w))
+
+    def unembed_queries(self, layer: int):  # -> [H, V, dh]
+        return self._layer_factor("_unembed_queries", layer, lambda: unembed_queries(self.w, self.directions(), layer))
+
+    def alpha(self, writer: Head):  # -> [V]  o_U(t) . u_t
+        def build():
+            (lU, hU) = writer
+            return unembed_coefficients(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU], self.directions())
+        return self._layer_factor("_alpha", writer, build)
+
+    def write_fraction(self, writer: Head, part: str) -> float:
+        """Fraction of the writer's squared write carried by ``part`` (1 for ``full``)."""
+        if part == "full":
+            return 1.0
+        fractions = self.__dict__.setdefault("_fractions", {})
+        if (writer, part) not in fractions:
+            (lU, hU) = writer
+            fractions[(writer, part)] = write_fraction(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU],
+                                                       part, self.alpha(writer))
+        return fractions[(writer, part)]
+
 
 def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) -> dict:
     """Statistics of every pair of one work unit: ``{(writer, responder): PairStats}``."""
     w = factors.w
     (lU, hU), lR = unit.writer, unit.responder_layer
     A = factors.values(lU)[hU]  # [V, dh]
-    K = factors.keys(lR)  # [H, V, dh]
-    middles = query_middles(w, lU, hU, lR)  # [H, dh, dh]
+    pair_factors = _side_factors(factors, unit, options, A)  # hR -> (left [V, dh], right [V, dh])
     ks = tuple(int(k) for k in options.k)
     out = {}
     for hR in unit.responder_heads:
-        left, right = query_side(A, middles[hR], K[hR], options.orientation)
+        left, right = pair_factors(hR)
         ranks = diagonal_midranks(left, right, block_rows=options.block_rows).numpy()
         out[(unit.writer, (lR, hR))] = summarise(ranks, w.vocab_size, ks)
     return out
+
+
+def _side_factors(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A):
+    """The factor pair of each responder head for the scan's side and query part (METHODS §3, §3b)."""
+    w = factors.w
+    (lU, hU), lR = unit.writer, unit.responder_layer
+    side, part, orientation = options.side, options.query_part, options.orientation
+    if w.rotary is not None and (side == "key" or part != "full"):
+        raise CompositionError(f"--side {side} --query-part {part} does not fold rotary positions yet; "
+                               "this model has rotary positions, so only --side query (part full) and --side value run.")
+    if side == "key":
+        middles, Q = key_middles(w, lU, hU, lR), factors.queries(lR)  # [H, dh, dh], [H, V, dh]
+        return lambda hR: key_side(A, middles[hR], Q[hR], orientation)
+    if side == "value":
+        middles, B = value_middles(w, lU, hU, lR), factors.readouts(lR)  # [H, dh, dh], [H, V, dh]
+        return lambda hR: value_side(A, middles[hR], B[hR], orientation)
+    middles, K = query_middles(w, lU, hU, lR), factors.keys(lR)  # [H, dh, dh], [H, V, dh]
+    if part == "full":
+        return lambda hR: query_side(A, middles[hR], K[hR], orientation)
+    alpha, Uq = factors.alpha(unit.writer), factors.unembed_queries(lR)  # [V], [H, V, dh]
+    return lambda hR: query_part_side(A, middles[hR], K[hR], part, alpha, Uq[hR], orientation)
 
 
 def _store(arrays, index, s) -> None:
@@ -228,7 +301,8 @@ def _attrs(w: Weights, options: ScanOptions, ks, n_pairs: int) -> dict:
         "n_heads": w.n_heads,
         "d_model": w.d_model,
         "d_head": w.d_head,
-        "side": "query",
+        "side": options.side,
+        "query_part": options.query_part,
         "table": options.table,
         "position": opts["position"],
         "orientation": options.orientation,

@@ -40,6 +40,9 @@ PAIR_DATASETS = {
     "q_value": ("f8", np.nan, None),
     "label": ("i1", LABEL_NOT_COMPUTED, None),
     "done": ("?", False, None),
+    # fraction of the writer's squared write norm carried by the scan's query part (METHODS §3b):
+    # depends on the writer only; 1 for part full and for the key and value sides
+    "write_fraction": ("f8", np.nan, None),
 }
 
 

@@ -1,0 +1,358 @@
+"""Key side, value side and the query side's mediation parts (METHODS §3b).
+
+Dense float64 oracles (tests/oracles/dense_sides.py, written from METHODS) on small random
+GPT-2-layout checkpoints written in the test; scale invariances; the projection identity;
+and recovery of what was planted in the invented demo model.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+
+import numpy as np
+import pytest
+import torch
+from click.testing import CliRunner
+
+from composition import CompositionError, load_weights
+from composition.cli import main
+from composition.factors import (key_middles, key_side, query_middles, query_part_side, query_side,
+                                 responder_keys, responder_queries, responder_readouts, unembed_coefficients,
+                                 unembed_directions, unembed_queries, value_middles, value_side, write_fraction,
+                                 writer_values)
+from composition.ranks import diagonal_midranks
+from composition.scan import ScanOptions, run_scan
+from composition.stats import summarise
+from composition.tables import TableOptions, token_table
+from tests.oracles import dense_gpt2 as og
+from tests.oracles import dense_sides as osd
+
+CFG = dict(model_type="gpt2", n_embd=64, n_head=4, n_layer=3, vocab_size=300, n_positions=32,
+           layer_norm_epsilon=1e-5, activation_function="gelu_new", n_inner=None)
+PAIRS = [((0, 1), (1, 2)), ((0, 3), (2, 0)), ((1, 2), (2, 3))]
+
+
+def _random_sd(cfg, seed, untied):
+    """A random GPT-2-layout state dict (float32) with non-trivial biases and norms."""
+    rng = np.random.default_rng(seed)
+    d, L, V, P = cfg["n_embd"], cfg["n_layer"], cfg["vocab_size"], cfg["n_positions"]
+    m = 4 * d
+    sd = {"wte.weight": rng.normal(0, 0.5, (V, d)), "wpe.weight": rng.normal(0, 0.3, (P, d)),
+          "ln_f.weight": 1 + rng.normal(0, 0.2, d), "ln_f.bias": rng.normal(0, 0.1, d)}
+    for i in range(L):
+        for ln in ("ln_1", "ln_2"):
+            sd[f"h.{i}.{ln}.weight"] = 1 + rng.normal(0, 0.2, d)
+            sd[f"h.{i}.{ln}.bias"] = rng.normal(0, 0.1, d)
+        sd[f"h.{i}.attn.c_attn.weight"] = rng.normal(0, 0.3, (d, 3 * d))
+        sd[f"h.{i}.attn.c_attn.bias"] = rng.normal(0, 0.3, 3 * d)
+        sd[f"h.{i}.attn.c_proj.weight"] = rng.normal(0, 0.1, (d, d))
+        sd[f"h.{i}.attn.c_proj.bias"] = rng.normal(0, 0.1, d)
+        sd[f"h.{i}.mlp.c_fc.weight"] = rng.normal(0, 0.2, (d, m))
+        sd[f"h.{i}.mlp.c_fc.bias"] = rng.normal(0, 0.1, m)
+        sd[f"h.{i}.mlp.c_proj.weight"] = rng.normal(0, 0.1, (m, d))
+        sd[f"h.{i}.mlp.c_proj.bias"] = rng.normal(0, 0.1, d)
+    sd = {"transformer." + k: v.astype(np.float32) for k, v in sd.items()}
+    if untied:
+        sd["lm_head.weight"] = rng.normal(0, 0.5, (V, d)).astype(np.float32)
+    return sd
+
+
+class Small:
+    """A small random checkpoint on disk, its canonical weights and both token tables."""
+
+    def __init__(self, directory, untied):
+        from safetensors.numpy import save_file
+
+        directory.mkdir(parents=True, exist_ok=True)
+        sd = _random_sd(CFG, seed=11 if untied else 12, untied=untied)
+        save_file(sd, str(directory / "model.safetensors"))
+        (directory / "config.json").write_text(json.dumps(CFG))
+        self.dir, self.sd = directory, sd
+        self.w = load_weights(directory)
+        self.T = token_table(self.w, TableOptions("attn0-mlp0"))  # [V, d] ours
+        self.T_oracle = og.token_table(sd, CFG, "attn0-mlp0", None)  # [V, d] oracle's own
+        self.scale = og.attn_scale(CFG, 1)
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory):
+    """Untied unembedding, so that a mix-up of W_U and W_E would show."""
+    return Small(tmp_path_factory.mktemp("small-untied"), untied=True)
+
+
+@pytest.fixture(scope="module")
+def small_tied(tmp_path_factory):
+    return Small(tmp_path_factory.mktemp("small-tied"), untied=False)
+
+
+def _factors(m: Small, writer, responder, side, part="full", orientation="row"):
+    """The analyzer's factor pair for one pair, built from the public factor functions."""
+    (lU, hU), (lR, hR) = writer, responder
+    A = writer_values(m.w, m.T, lU)[hU]  # [V, dh]
+    if side == "key":
+        return key_side(A, key_middles(m.w, lU, hU, lR)[hR], responder_queries(m.w, m.T, lR)[hR], orientation)
+    if side == "value":
+        return value_side(A, value_middles(m.w, lU, hU, lR)[hR], responder_readouts(m.w, lR)[hR], orientation)
+    C, K = query_middles(m.w, lU, hU, lR)[hR], responder_keys(m.w, m.T, lR)[hR]
+    U = unembed_directions(m.w)  # [V, d]
+    alpha = unembed_coefficients(A, m.w.layers[lU].attn.W_O[hU], U)  # [V]
+    return query_part_side(A, C, K, part, alpha, unembed_queries(m.w, U, lR)[hR], orientation)
+
+
+def _oracle(m: Small, writer, responder, side, part="full"):
+    """The oracle's dense matrix, row orientation (rows: query tokens for the key side)."""
+    if side == "key":
+        return osd.dense_key_matrix(m.sd, CFG, m.T_oracle, writer, responder)
+    if side == "value":
+        return osd.dense_value_matrix(m.sd, CFG, m.T_oracle, writer, responder)
+    return osd.dense_query_part_matrix(m.sd, CFG, m.T_oracle, writer, responder, part)
+
+
+def _close(a, b, rtol=1e-9):
+    a, b = np.asarray(a, np.float64), np.asarray(b, np.float64)
+    assert np.max(np.abs(a - b)) <= rtol * np.max(np.abs(b))
+
+
+CASES = [("key", "full"), ("value", "full"), ("query", "full"), ("query", "unembed"), ("query", "rest")]
+
+
+# ---------------------------------------------------------------------------
+# dense oracles: every row's (or column's) midrank exact
+# ---------------------------------------------------------------------------
+
+@pytest.mark.parametrize("tied", [False, True])
+@pytest.mark.parametrize("side,part", CASES)
+def test_factors_equal_dense_oracle_and_midranks_exact(small, small_tied, side, part, tied):
+    """For each side and each query part, on a small random GPT-2-layout checkpoint (tied and
+    untied unembedding): the analyzer's factors multiply to the oracle's dense float64 matrix,
+    and the exact midrank kernel gives every row's diagonal midrank (and, where the side offers
+    it, every column's) exactly as scipy.stats.rankdata on the dense matrix.
+
+    Reference library: scipy.stats.rankdata (via tests/oracles/dense_gpt2.midranks_rows);
+    Source: METHODS.md §3, §3b, §4 (the oracle's formulas)"""
+    small = small_tied if tied else small
+    orientations = ("row",) if side == "value" else ("row", "column")
+    for writer, responder in PAIRS:
+        S = _oracle(small, writer, responder, side, part)  # [V, V]
+        left, right = _factors(small, writer, responder, side, part)
+        _close((left @ right.T).numpy() * (1.0 if side == "value" else small.scale), S)
+        for orientation in orientations:
+            left, right = _factors(small, writer, responder, side, part, orientation)
+            ours = diagonal_midranks(left, right).numpy()
+            ref = og.midranks_rows(S) if orientation == "row" else og.midranks_columns(S)
+            np.testing.assert_array_equal(ours, ref)
+
+
+def test_key_side_rows_are_query_tokens(small):
+    """The key side's rows are query tokens ``j``: row ``j`` of the dense matrix is the score of
+    query ``N_lR(T[j]) W_Q + b_Q`` against each written token's key, so changing the responder's
+    query bias changes the rows' ranks (it varies along a row), while changing its key bias does
+    not change the matrix at all (the written-token key is the writer's linear contribution).
+
+    Source: METHODS.md §3b (key side), §3 (key bias constant over keys)"""
+    (writer, responder) = PAIRS[0]
+    S = _oracle(small, writer, responder, "key")
+    left, right = _factors(small, writer, responder, "key")
+    d, dh, hR = CFG["n_embd"], CFG["n_embd"] // CFG["n_head"], responder[1]
+    name = f"transformer.h.{responder[0]}.attn.c_attn.bias"
+    for block, expect_same in ((1, True), (0, False)):  # 1: key bias, 0: query bias
+        sd = dict(small.sd)
+        bias = sd[name].copy()
+        bias[block * d + hR * dh:block * d + (hR + 1) * dh] += 3.0
+        sd[name] = bias
+        S2 = osd.dense_key_matrix(sd, CFG, small.T_oracle, writer, responder)
+        assert np.array_equal(S2, S) == expect_same
+    ranks = diagonal_midranks(left, right).numpy()
+    np.testing.assert_array_equal(ranks, og.midranks_rows(S))
+
+
+def test_value_side_refuses_column_orientation(small):
+    """The value side is row orientation only (METHODS §3b): asking for columns is a plain error.
+
+    Common practice, no source"""
+    writer, responder = PAIRS[0]
+    with pytest.raises(CompositionError, match="--side value"):
+        _factors(small, writer, responder, "value", orientation="column")
+    with pytest.raises(CompositionError, match="--side value"):
+        ScanOptions(side="value", orientation="column").validate()
+    with pytest.raises(CompositionError, match="--query-part"):
+        ScanOptions(side="key", query_part="unembed").validate()
+
+
+def test_write_fraction_matches_oracle_and_parts_sum_to_one(small):
+    """The write fraction of each part (mean over tokens of |o_part(t)|^2 / |o_U(t)|^2) equals the
+    oracle's residual-space computation; unembed + rest = 1 token by token, so their means sum to 1.
+
+    Source: METHODS.md §3b (write fraction; Pythagoras for an orthogonal projection)"""
+    for writer, _ in PAIRS:
+        (lU, hU) = writer
+        A = writer_values(small.w, small.T, lU)[hU]
+        W_O = small.w.layers[lU].attn.W_O[hU]
+        alpha = unembed_coefficients(A, W_O, unembed_directions(small.w))
+        got = {p: write_fraction(A, W_O, p, alpha) for p in ("full", "unembed", "rest")}
+        assert got["full"] == 1.0
+        for p in ("unembed", "rest"):
+            assert got[p] == pytest.approx(osd.write_fraction(small.sd, CFG, small.T_oracle, writer, p), rel=1e-9)
+        assert got["unembed"] + got["rest"] == pytest.approx(1.0, abs=1e-12)
+        assert 0.0 < got["unembed"] < 0.5  # a random write is mostly off its token's direction
+
+
+# ---------------------------------------------------------------------------
+# the projection identity
+# ---------------------------------------------------------------------------
+
+@pytest.mark.parametrize("orientation", ["row", "column"])
+def test_projection_identity_full_is_unembed_plus_rest(small, orientation):
+    """full = unembed + rest on the factors: the written-token factors of the two parts add up
+    to the full one to float tolerance, and the fixed factor is shared; the unembed part is rank
+    dh (rows of one [V, dh] matrix scaled by signed per-token numbers).
+
+    Source: METHODS.md §3b (o_U(t) = its projection on u_t + the remainder)"""
+    written = 0 if orientation == "row" else 1
+    for writer, responder in PAIRS:
+        full = _factors(small, writer, responder, "query", "full", orientation)
+        une = _factors(small, writer, responder, "query", "unembed", orientation)
+        rest = _factors(small, writer, responder, "query", "rest", orientation)
+        assert full[0].shape == une[0].shape == rest[0].shape == (CFG["vocab_size"], CFG["n_embd"] // CFG["n_head"])
+        _close(une[written] + rest[written], full[written], rtol=1e-12)
+        assert torch.equal(une[1 - written], full[1 - written]) and torch.equal(rest[1 - written], full[1 - written])
+        # and on the dense oracle: S_full = S_unembed + S_rest
+        S = [_oracle(small, writer, responder, "query", p) for p in ("full", "unembed", "rest")]
+        _close(S[1] + S[2], S[0], rtol=1e-12)
+
+
+# ---------------------------------------------------------------------------
+# scale invariance
+# ---------------------------------------------------------------------------
+
+def test_key_side_columns_are_free_of_key_scales(small):
+    """Multiplying each written token's key by a random positive factor leaves every column rank
+    of the key side unchanged (column orientation: a written token across query tokens), and the
+    ranks still equal scipy's on the rescaled dense matrix; the row orientation, by contrast, does
+    depend on those scales (the common-scale assumption is a real assumption).
+
+    Reference library: scipy.stats.rankdata; Source: METHODS.md §3b"""
+    rng = np.random.default_rng(0)
+    for writer, responder in PAIRS:
+        keys, queries = _factors(small, writer, responder, "key", orientation="column")  # written, query
+        c = torch.tensor(rng.uniform(0.05, 20.0, CFG["vocab_size"]))  # [V] > 0
+        base = diagonal_midranks(keys, queries).numpy()
+        scaled = diagonal_midranks(keys * c[:, None], queries).numpy()
+        np.testing.assert_array_equal(scaled, base)
+        S = _oracle(small, writer, responder, "key") * c.numpy()[None, :]  # column t scaled by c_t
+        np.testing.assert_array_equal(scaled, og.midranks_columns(S))
+        row_base = diagonal_midranks(queries, keys).numpy()
+        row_scaled = diagonal_midranks(queries, keys * c[:, None]).numpy()
+        assert not np.array_equal(row_scaled, row_base)
+
+
+@pytest.mark.parametrize("side,part", [("query", "full"), ("query", "unembed"), ("query", "rest"), ("value", "full")])
+def test_row_ranks_free_of_written_token_scales(small, side, part):
+    """Multiplying each row of the query and value sides' written-token factor by a random positive
+    factor leaves every row rank unchanged, equal to scipy's on the rescaled dense matrix.
+
+    Reference library: scipy.stats.rankdata; Source: METHODS.md §3, §3b"""
+    rng = np.random.default_rng(1)
+    for writer, responder in PAIRS:
+        left, right = _factors(small, writer, responder, side, part)
+        c = torch.tensor(rng.uniform(0.05, 20.0, CFG["vocab_size"]))  # [V] > 0
+        scaled = diagonal_midranks(left * c[:, None], right).numpy()
+        np.testing.assert_array_equal(scaled, diagonal_midranks(left, right).numpy())
+        S = _oracle(small, writer, responder, side, part) * c.numpy()[:, None]
+        np.testing.assert_array_equal(scaled, og.midranks_rows(S))
+
+
+def test_key_rotation_argument_matches_dense_score(small):
+    """An averaged rotary matrix ``M`` passed to key_middles is folded so that the key side equals
+    the dense score ``q M k^T`` (METHODS §3, row-vector form), here with a random ``M``.
+
+    Source: METHODS.md §3 (rotary folding)"""
+    writer, responder = PAIRS[1]
+    (lU, hU), (lR, hR) = writer, responder
+    dh = CFG["n_embd"] // CFG["n_head"]
+    M = np.random.default_rng(2).normal(size=(dh, dh))
+    A = writer_values(small.w, small.T, lU)[hU]
+    left, right = key_side(A, key_middles(small.w, lU, hU, lR, rotation=torch.tensor(M))[hR],
+                           responder_queries(small.w, small.T, lR)[hR])
+    S = osd.dense_key_matrix(small.sd, CFG, small.T_oracle, writer, responder, rotation=M)
+    _close((left @ right.T).numpy() * small.scale, S)
+    np.testing.assert_array_equal(diagonal_midranks(left, right).numpy(), og.midranks_rows(S))
+
+
+# ---------------------------------------------------------------------------
+# the scan: dispatch, scan file, CLI
+# ---------------------------------------------------------------------------
+
+@pytest.mark.parametrize("side,part,orientation", [("key", "full", "row"), ("key", "full", "column"),
+                                                   ("value", "full", "row"), ("query", "unembed", "row"),
+                                                   ("query", "rest", "column")])
+def test_scan_dispatch_matches_oracle(small, tmp_path, side, part, orientation):
+    """A scan with --side/--query-part stores, per pair, the statistics of the oracle's midranks,
+    records side and query part in the file, and stores the write fraction beside the shares.
+
+    Reference library: scipy.stats.rankdata; Source: METHODS.md §3b, §4"""
+    options = ScanOptions(table="attn0-mlp0", side=side, query_part=part, orientation=orientation,
+                          writers="0.1,1.2", responders="2")
+    scan = run_scan(small.dir, tmp_path / "s.h5", options)
+    assert scan.attrs["side"] == side and scan.attrs["query_part"] == part
+    assert json.loads(scan.attrs["options"])["side"] == side
+    for writer in ((0, 1), (1, 2)):
+        frac = 1.0 if part == "full" else osd.write_fraction(small.sd, CFG, small.T_oracle, writer, part)
+        for hR in range(CFG["n_head"]):
+            S = _oracle(small, writer, (2, hR), side, part)
+            ref = summarise(og.midranks_rows(S) if orientation == "row" else og.midranks_columns(S), 300)
+            ix = writer + (2, hR)
+            assert scan.done[ix]
+            np.testing.assert_array_equal(scan.top_share[ix], ref.top_share)
+            np.testing.assert_array_equal(scan.bottom_share[ix], ref.bottom_share)
+            assert scan.mean_percentile[ix] == ref.mean_percentile
+            assert scan.write_fraction[ix] == pytest.approx(frac, rel=1e-9)
+    assert np.isnan(scan.write_fraction[0, 0, 2, 0])  # not computed
+
+
+def test_scan_fingerprint_depends_on_side_and_part(small, tmp_path):
+    """Scans of the same weights with different sides or parts get different fingerprints, so
+    their files are never mistaken for one another. Common practice, no source"""
+    fps = set()
+    for side, part in (("query", "full"), ("query", "unembed"), ("key", "full")):
+        scan = run_scan(small.dir, tmp_path / f"{side}-{part}.h5",
+                        ScanOptions(side=side, query_part=part, writers="1.0", responders="2.0"))
+        fps.add(scan.attrs["fingerprint"])
+        assert scan.attrs["weights_fingerprint"] == small.w.fingerprint()
+    assert len(fps) == 3
+
+
+def test_rotary_models_refuse_key_side_and_parts(small, tmp_path):
+    """A model with rotary positions refuses --side key and the query parts with one sentence
+    (their rotary folding is not wired in yet) instead of silently ignoring the rotation.
+    Common practice, no source"""
+    import dataclasses
+
+    from composition.weights import Rotary
+
+    dh = CFG["n_embd"] // CFG["n_head"]
+    w = dataclasses.replace(small.w, rotary=Rotary(dh, "split-half", torch.ones(dh // 2)))
+    for side, part in (("key", "full"), ("query", "unembed")):
+        with pytest.raises(CompositionError, match="rotary"):
+            run_scan(w, tmp_path / "r.h5", ScanOptions(side=side, query_part=part, writers="0.0", responders="1.0"))
+    scan = run_scan(w, tmp_path / "v.h5", ScanOptions(side="value", writers="0.0", responders="1.0"))
+    assert scan.done[0, 0, 1, 0]
+
+
+def test_cli_side_options(small, tmp_path):
+    """`composition scan --side key` writes a key-side scan file; a contradictory option pair is one
+    line on stderr with exit status 2, no traceback. Common practice, no source"""
+    runner = CliRunner()
+    out = tmp_path / "k.h5"
+    res = runner.invoke(main, ["scan", str(small.dir), "-o", str(out), "--side", "key", "--orientation", "column",
+                               "--writers", "0.1", "--responders", "1", "-q"])
+    assert res.exit_code == 0, res.output
+    assert "side key" in res.output
+    from composition import load_scan
+
+    assert load_scan(out).attrs["side"] == "key" and load_scan(out).attrs["orientation"] == "column"
+    for args in (["--side", "value", "--orientation", "column"], ["--side", "key", "--query-part", "rest"]):
+        res = runner.invoke(main, ["scan", str(small.dir), "-o", str(tmp_path / "x.h5"), *args, "-q"])
+        assert res.exit_code == 2
+        assert res.stderr.count("\n") == 1 and "Traceback" not in res.stderr
