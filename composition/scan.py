@@ -23,7 +23,8 @@ from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
 from .ranks import diagonal_midranks
-from .scanfile import CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, empty_pairs, load_scan, write_scan
+from .scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, check_writable, empty_pairs, load_scan,
+                       write_scan)
 from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
 from .tables import TABLES, TableOptions, token_table
 from .weights import Weights
@@ -118,6 +119,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
         raise CompositionError(f"{out} exists already; pass --overwrite to replace it.")
     if out.is_dir():
         raise CompositionError(f"{out} is a directory, not a scan file path.")
+    check_writable(out)
     w = checkpoint if isinstance(checkpoint, Weights) else load_weights(checkpoint)
     pairs = scan_pairs(w, options)
     T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
