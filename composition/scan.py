@@ -26,7 +26,8 @@ from .factors import (QUERY_PARTS, SIDES, key_middles, key_side, query_part_side
                       responder_readouts, unembed_coefficients, unembed_directions, unembed_queries,
                       value_middles, value_side, write_fraction)
 from .ranks import diagonal_midranks
-from .scanfile import CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, empty_pairs, load_scan, write_scan
+from .scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, check_writable, empty_pairs, load_scan,
+                       write_scan)
 from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
 from .tables import TABLES, TableOptions, token_table
 from .weights import Weights
@@ -133,6 +134,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
         raise CompositionError(f"{out} exists already; pass --overwrite to replace it.")
     if out.is_dir():
         raise CompositionError(f"{out} is a directory, not a scan file path.")
+    check_writable(out)
     w = checkpoint if isinstance(checkpoint, Weights) else load_weights(checkpoint)
     pairs = scan_pairs(w, options)
     T = token_table(w, TableOptions(options.table, options.position))  # [V, d]

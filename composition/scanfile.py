@@ -54,6 +54,20 @@ def empty_pairs(n_layers: int, n_heads: int, n_k: int, n_bins: int) -> dict[str,
             for name, (dtype, fill, axis) in PAIR_DATASETS.items()}
 
 
+def check_writable(path: str | os.PathLike) -> None:
+    """Fail now, with a sentence, if a scan file cannot be created at ``path``."""
+    path = Path(path)
+    directory = path.parent if str(path.parent) else Path(".")
+    if not directory.is_dir():
+        raise CompositionError(f"output directory {directory} does not exist.")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=directory)
+        os.close(fd)
+    except OSError as exc:
+        raise CompositionError(f"cannot write the scan file {path} ({exc.strerror}).") from None
+    _remove(tmp)
+
+
 def write_scan(path: str | os.PathLike, attrs: dict, pairs: dict[str, np.ndarray]) -> Path:
     """Write a complete scan file atomically (temporary file, then rename)."""
     import h5py

@@ -15,7 +15,6 @@ from dataclasses import dataclass, field, fields
 
 import torch
 
-from .errors import CompositionError
 
 
 @dataclass(frozen=True)
@@ -134,14 +133,6 @@ class Weights:
         if self.rotary is not None:
             h.update(f"rotary|{self.rotary.dims}|{self.rotary.style}".encode())
         return h.hexdigest()
-
-    def check_finite(self) -> None:
-        """Refuse NaN or Inf in any weight, naming the tensor."""
-        for name, t in _named_tensors(self):
-            if t.is_floating_point() and not torch.isfinite(t).all():
-                raise CompositionError(
-                    f"weight {name} of {self.source or 'the checkpoint'} contains NaN or Inf values."
-                )
 
 
 def _named_tensors(w: Weights):

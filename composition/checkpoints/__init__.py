@@ -29,9 +29,7 @@ def load_weights(checkpoint: str | os.PathLike, family: str | None = None) -> We
         family = found[0]
     elif family not in FAMILIES:
         raise CompositionError(f"--family {family!r} is not one of: {', '.join(FAMILIES)}.")
-    weights = FAMILIES[family].read(TensorSource(weights_file), config)
-    weights.check_finite()
-    return weights
+    return FAMILIES[family].read(TensorSource(weights_file), config)
 
 
 __all__ = ["load_weights", "FAMILIES", "TensorSource", "locate"]

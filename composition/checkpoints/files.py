@@ -53,8 +53,11 @@ class TensorSource:
             )
         if not t.is_floating_point():
             raise CompositionError(f"tensor {name} in {self.path} is {t.dtype}, not a float type.")
+        t = t.to(torch.float32)
+        if not torch.isfinite(t).all():
+            raise CompositionError(f"tensor {name} in {self.path} contains NaN or Inf values.")
         self._taken.add(name)
-        return t.to(torch.float32)
+        return t
 
     def used(self) -> list[str]:
         return sorted(self._taken)
