@@ -12,7 +12,7 @@ import numpy as np
 from .errors import CompositionError
 from .factors import ORIENTATIONS, QUERY_PARTS, SIDES
 from .scan import ScanOptions, run_scan
-from .scanfile import CAUTION
+from .scanfile import CAUTION, load_scan
 from .stats import DEFAULT_FDR, DEFAULT_MIN_EFFECT, LABEL_NOT_COMPUTED
 from .tables import TABLES
 
@@ -128,7 +128,7 @@ def _run(checkpoint, out, options, overwrite, quiet):
     return result
 
 
-def _print_findings(result) -> None:
+def _print_findings(result, note: bool = True) -> None:
     lab = result.label
     found = [tuple(int(i) for i in ix) for ix in np.argwhere((lab != 0) & (lab != LABEL_NOT_COMPUTED))]
     ks = list(result.k)
@@ -146,7 +146,8 @@ def _print_findings(result) -> None:
                    f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
                    f"{result.bottom_share[ix][0]:9.3f} {result.q_value[ix]:9.1e}"
                    + (f" {result.write_fraction[ix]:14.3f}" if fraction else ""))
-    click.echo(f"note: {CAUTION}")
+    if note:
+        click.echo(f"note: {CAUTION}")
 
 
 @main.command()
@@ -197,3 +198,37 @@ def demo(directory, quiet):
     for name, (u, r, _, _, qk, ov) in PLANTED_CIRCUITS.items():
         click.echo(f"  {name:<11} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: "
                    f"{_LABEL_WORDS[qk]}, responder {'copies' if ov > 0 else 'suppresses'}")
+    _demo_sides(root, model, quiet)
+
+
+def _demo_sides(root: Path, model, quiet) -> None:
+    """The demo's other sides and query parts (docs/sides.md), for the writers of layer 1."""
+    from .demo import SIDE_CIRCUITS
+
+    click.echo("\nother sides and query parts, writers of layer 1 (where the demo's writers are):")
+    parts = {}
+    for side, part in (("key", "full"), ("value", "full"), ("query", "unembed"), ("query", "rest")):
+        name = f"demo-scan-{side}.h5" if part == "full" else f"demo-scan-{side}-{part}.h5"
+        options = ScanOptions(side=side, query_part=part, writers="1", responders="2,3")
+        result = _run(model, root / name, options, overwrite=True, quiet=quiet)
+        _print_findings(result, note=False)
+        if side == "query":
+            parts[part] = result
+    full = load_scan(root / "demo-scan.h5")
+    k = int(full.k[-1])
+    click.echo(f"mediation of the query side's labelled pairs: top-{k} share (and write fraction) per part")
+    click.echo(f"  {'writer':>7} {'responder':>9}  {'full':>6} {'unembed':>16} {'rest':>16}")
+    for ix in np.argwhere((full.label == 1) | (full.label == -1)):
+        ix = tuple(int(i) for i in ix)
+        if not parts["unembed"].done[ix]:
+            continue
+        which = "top_share" if full.label[ix] == 1 else "bottom_share"
+        cells = [f"{getattr(parts[p], which)[ix][-1]:6.3f} ({parts[p].write_fraction[ix]:.3f})" for p in ("unembed", "rest")]
+        click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {getattr(full, which)[ix][-1]:6.3f} "
+                   f"{cells[0]:>16} {cells[1]:>16}")
+    click.echo("  (bottom-k share for attention-lowering pairs; rank statistics are blind to magnitude,"
+               " so read each part beside the fraction of the write it carries)")
+    click.echo("planted for the other sides and parts (invented scenario):")
+    for name, (u, r, what) in SIDE_CIRCUITS.items():
+        click.echo(f"  {name:<15} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: {what}")
+    click.echo(f"note: {CAUTION}")

@@ -10,6 +10,20 @@ orthogonal to each other and to the all-ones direction, carry the planted circui
   of the key decides attention-raising or attention-lowering) and write into a subspace
   of their own, copying (+) or suppressing (-) the attended token.
 
+The other sides and the mediation parts (METHODS §3b) have circuits of their own, planted in
+16-dimensional blocks of the free space (subspace 6 and the 31-dimensional remainder):
+
+* writer 1.1 moves the token's block-A component into block B (the write of a previous-token
+  head: what it writes is the attended token, in a different subspace). Responder 2.0 queries
+  with the token's own block A and keys on block B: induction-like, seen by the key side only.
+  Responder 2.1 queries with block B and keys on block A: seen by the query side, through the
+  part of the write off the token's unembedding direction (``rest``). Responder 2.2 reads
+  block B with its value and writes block A: the pair copies the token through (value side).
+* writer 1.3 copies blocks C and D; the token embedding carries fixed shares of its norm in
+  C and D, and the D write is exactly the D component of the write's projection on the
+  token's own unembedding direction. Responder 2.4 reads block D with query and key: it reads
+  the writer only through the unembedding direction (``unembed``).
+
 Every planted weight carries a small random perturbation; all other heads are random.
 """
 
@@ -31,11 +45,36 @@ PLANTED_CIRCUITS = {
     "reinforcer": ((1, 5), (3, 6), 4, 5, +1, +1),
 }
 
-# (writer, responder) -> expected query-side label, for the recovery tests
-PLANTED_PAIRS = {(c[0], c[1]): c[4] for c in PLANTED_CIRCUITS.values()}
-# head -> expected OV sign (+1 copying, -1 suppressing); writers all copy
+# Circuits for the other sides and the mediation parts (METHODS §3b), planted in 16-dimensional
+# blocks of the space PLANTED_CIRCUITS leave free. name: (writer head, responder head, what it shows)
+SIDE_CIRCUITS = {
+    "induction-like": ((1, 1), (2, 0), "key side: queries with the token's block A, keys on the writer's block B"),
+    "off-unembedding": ((1, 1), (2, 1), "query side, through the part of the write off the token's unembedding direction"),
+    "copy-through": ((1, 1), (2, 2), "value side: moves the writer's block B back to block A, read at the logits"),
+    "on-unembedding": ((1, 3), (2, 4), "query side, only through the write's projection on the token's unembedding direction"),
+}
+BLOCK = 16  # width of the side circuits' blocks
+_SHARE_C = 0.25  # fixed share of each token's centred squared embedding norm in block C
+
+# (writer, responder) -> expected query-side label, for the recovery tests: exactly the
+# query-side labels of the demo
+PLANTED_PAIRS = {**{(c[0], c[1]): c[4] for c in PLANTED_CIRCUITS.values()},
+                 ((1, 1), (2, 1)): +1, ((1, 3), (2, 4)): +1}
+# (writer, responder) -> expected key-side label (row orientation): every pair whose responder
+# keys on a writer's write and queries with the same token's own component
+PLANTED_KEY_PAIRS = {**{(c[0], c[1]): c[4] for c in PLANTED_CIRCUITS.values()},
+                     ((1, 1), (2, 0)): +1, ((1, 3), (2, 4)): +1}
+# (writer, responder) -> expected value-side label (+1 copies through, -1 suppresses)
+PLANTED_VALUE_PAIRS = {((1, 1), (2, 2)): +1}
+# (writer, responder) -> expected query-side label under each --query-part. The three
+# PLANTED_CIRCUITS pairs keep their label in every part: their writers copy, so the write's
+# projection on the token's unembedding direction reads like the whole write.
+PLANTED_MEDIATION = {((1, 3), (2, 4)): {"full": +1, "unembed": +1, "rest": 0},
+                     ((1, 1), (2, 1)): {"full": +1, "unembed": 0, "rest": +1}}
+# head -> expected OV sign (+1 copying, -1 suppressing); writers 1.0, 1.2, 1.5 and 1.3 copy
 PLANTED_HEADS = {**{c[0]: +1 for c in PLANTED_CIRCUITS.values()},
-                 **{c[1]: c[5] for c in PLANTED_CIRCUITS.values()}}
+                 **{c[1]: c[5] for c in PLANTED_CIRCUITS.values()},
+                 (1, 3): +1}
 
 
 def build_demo(directory: str | Path, seed: int = 0) -> Path:
@@ -68,8 +107,10 @@ def build_demo(directory: str | Path, seed: int = 0) -> Path:
         plant(W_K, lr, hr, qk * sub(s_w))
         plant(W_V, lr, hr, sub(s_r))
         plant(W_O, lr, hr, ov * sub(s_r).T)
+    # a generator of its own, so every tensor drawn below is the same as without the side circuits
+    _plant_side_circuits(W_Q, W_K, W_V, W_O, _blocks(basis), torch.Generator().manual_seed(seed + 1))
 
-    t = {"wte.weight": randn(V, d), "wpe.weight": randn(P, d, std=0.01)}
+    t = {"wte.weight": _fix_block_shares(randn(V, d), _blocks(basis)), "wpe.weight": randn(P, d, std=0.01)}
     for i in range(L):
         p = f"h.{i}."
         per_head = lambda W: W[i].permute(1, 0, 2).reshape(d, d)  # noqa: E731  [H, d, dh] -> [d, H*dh]
@@ -104,6 +145,65 @@ def build_demo(directory: str | Path, seed: int = 0) -> Path:
     }
     (out / "config.json").write_text(json.dumps(config, indent=2) + "\n")
     return out
+
+
+def _blocks(basis: torch.Tensor) -> dict[str, torch.Tensor]:
+    """The side circuits' blocks: A, B halve subspace 6; C and D (15 dims) split the remainder. # -> [d, <=16] each"""
+    first = 6 * SUB
+    return {"A": basis[:, first:first + BLOCK], "B": basis[:, first + BLOCK:first + 2 * BLOCK],
+            "C": basis[:, first + 2 * BLOCK:first + 3 * BLOCK], "D": basis[:, first + 3 * BLOCK:]}
+
+
+def _share_D(blocks) -> float:
+    """Block D's fixed share of each token's centred squared embedding norm: its natural share."""
+    return blocks["D"].shape[1] / blocks["D"].shape[0]
+
+
+def _fix_block_shares(wte: torch.Tensor, blocks) -> torch.Tensor:
+    """Rescale each token's block-C and block-D components to fixed shares of its centred squared
+    norm (``_SHARE_C``, ``_share_D``); directions and every other component are kept. # [V, d] -> [V, d]"""
+    C, D = blocks["C"], blocks["D"]  # [d, 16], [d, 15]
+    c, dd = wte @ C, wte @ D  # [V, 16], [V, 15]
+    other = wte - wte.mean(1, keepdim=True) - c @ C.T - dd @ D.T  # [V, d] centred, C and D removed
+    n2 = other.pow(2).sum(1, keepdim=True) / (1.0 - _SHARE_C - _share_D(blocks))  # [V, 1]
+    c_new = c / c.norm(dim=1, keepdim=True) * (_SHARE_C * n2).sqrt()  # [V, 16]
+    d_new = dd / dd.norm(dim=1, keepdim=True) * (_share_D(blocks) * n2).sqrt()  # [V, 15]
+    return wte + (c_new - c) @ C.T + (d_new - dd) @ D.T  # [V, d]
+
+
+def _plant_side_circuits(W_Q, W_K, W_V, W_O, blocks, g: torch.Generator, noise: float = 0.1) -> None:
+    """Plant SIDE_CIRCUITS into the ``[L, H, d, dh]`` / ``[L, H, dh, d]`` weight tensors, in place."""
+    d = W_Q.shape[2]
+
+    def cols(*parts):  # blocks side by side, zero-padded to the head width: [d, SUB]
+        out = torch.zeros(d, SUB, dtype=torch.float64)
+        at = 0
+        for scale, name in parts:
+            out[:, at:at + blocks[name].shape[1]] = scale * blocks[name]
+            at += blocks[name].shape[1]
+        return out
+
+    def plant(tensor, head, value):
+        rms = float(value.norm()) / value.numel() ** 0.5
+        tensor[head] = value + noise * rms * torch.randn(*value.shape, generator=g, dtype=torch.float64)
+
+    A, B, D = ((1.0, "A"),), ((1.0, "B"),), ((1.0, "D"),)
+    # writer 1.1: the token's block-A component, written into block B
+    plant(W_V, (1, 1), cols(*A))
+    plant(W_O, (1, 1), cols(*B).T)
+    plant(W_Q, (2, 0), cols(*A))  # induction-like: query the token itself ...
+    plant(W_K, (2, 0), cols(*B))  # ... against keys holding the written token
+    plant(W_Q, (2, 1), cols(*B))  # the reverse: query the write ...
+    plant(W_K, (2, 1), cols(*A))  # ... against the key token itself
+    plant(W_V, (2, 2), cols(*B))  # copy-through: read the write ...
+    plant(W_O, (2, 2), cols(*A).T)  # ... and write it back as the token's own component
+    # writer 1.3: copies blocks C and D; lam makes its D write equal to the D component of the
+    # write's projection on the token's unembedding direction (shares fixed by _fix_block_shares)
+    lam = _SHARE_C / (1.0 - _share_D(blocks))
+    plant(W_V, (1, 3), cols((1.0, "C"), (1.0, "D")))
+    plant(W_O, (1, 3), cols((1.0, "C"), (lam, "D")).T)
+    plant(W_Q, (2, 4), cols(*D))
+    plant(W_K, (2, 4), cols(*D))
 
 
 def _subspaces(gauss: torch.Tensor, d: int) -> torch.Tensor:
