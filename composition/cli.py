@@ -211,9 +211,10 @@ def _demo_sides(root: Path, model, quiet) -> None:
         name = f"demo-scan-{side}.h5" if part == "full" else f"demo-scan-{side}-{part}.h5"
         options = ScanOptions(side=side, query_part=part, writers="1", responders="2,3")
         result = _run(model, root / name, options, overwrite=True, quiet=quiet)
-        _print_findings(result, note=False)
-        if side == "query":
+        if side == "query":  # parts are read pair by pair against the full write: the table below
             parts[part] = result
+        else:
+            _print_findings(result, note=False)
     full = load_scan(root / "demo-scan.h5")
     k = int(full.k[-1])
     click.echo(f"mediation of the query side's labelled pairs: top-{k} share (and write fraction) per part")
@@ -226,8 +227,9 @@ def _demo_sides(root: Path, model, quiet) -> None:
         cells = [f"{getattr(parts[p], which)[ix][-1]:6.3f} ({parts[p].write_fraction[ix]:.3f})" for p in ("unembed", "rest")]
         click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {getattr(full, which)[ix][-1]:6.3f} "
                    f"{cells[0]:>16} {cells[1]:>16}")
-    click.echo("  (bottom-k share for attention-lowering pairs; rank statistics are blind to magnitude,"
-               " so read each part beside the fraction of the write it carries)")
+    click.echo("  (bottom-k share for attention-lowering pairs; rank statistics are blind to magnitude, so read"
+               " each part beside the fraction of the write it carries; for pairs neutral on the full write the"
+               " two parts can carry opposite labels that cancel: see docs/sides.md)")
     click.echo("planted for the other sides and parts (invented scenario):")
     for name, (u, r, what) in SIDE_CIRCUITS.items():
         click.echo(f"  {name:<15} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: {what}")

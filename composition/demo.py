@@ -66,11 +66,11 @@ PLANTED_KEY_PAIRS = {**{(c[0], c[1]): c[4] for c in PLANTED_CIRCUITS.values()},
                      ((1, 1), (2, 0)): +1, ((1, 3), (2, 4)): +1}
 # (writer, responder) -> expected value-side label (+1 copies through, -1 suppresses)
 PLANTED_VALUE_PAIRS = {((1, 1), (2, 2)): +1}
-# (writer, responder) -> expected query-side label under each --query-part. The three
-# PLANTED_CIRCUITS pairs keep their label in every part: their writers copy, so the write's
-# projection on the token's unembedding direction reads like the whole write.
-PLANTED_MEDIATION = {((1, 3), (2, 4)): {"full": +1, "unembed": +1, "rest": 0},
-                     ((1, 1), (2, 1)): {"full": +1, "unembed": 0, "rest": +1}}
+# (writer, responder) -> the --query-part through which the responder reads the writer: its
+# top-k shares survive in that part and vanish (fall to their null value) in the other. The
+# three PLANTED_CIRCUITS pairs keep their shares in both parts: their writers copy, so the
+# write's projection on the token's unembedding direction reads like the whole write.
+PLANTED_MEDIATION = {((1, 3), (2, 4)): "unembed", ((1, 1), (2, 1)): "rest"}
 # head -> expected OV sign (+1 copying, -1 suppressing); writers 1.0, 1.2, 1.5 and 1.3 copy
 PLANTED_HEADS = {**{c[0]: +1 for c in PLANTED_CIRCUITS.values()},
                  **{c[1]: c[5] for c in PLANTED_CIRCUITS.values()},

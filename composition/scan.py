@@ -196,30 +196,30 @@ class _FactorCache:
         return self._keys[1]
 
     # --- other sides and query parts (METHODS §3b): built only when a scan needs them
-    def _layer_factor(self, name: str, layer: int, build):
-        held = self.__dict__.get(name)
-        if held is None or held[0] != layer:
-            held = (layer, build())
-            self.__dict__[name] = held
-        return held[1]
+    def _held(self, name: str, key, build):
+        """One factor per name, kept until its key (a layer, or a writer head) changes."""
+        store = self.__dict__.setdefault("_side_held", {})
+        if name not in store or store[name][0] != key:
+            store[name] = (key, build())
+        return store[name][1]
 
     def queries(self, layer: int):  # -> [H, V, dh]  full token-table queries (key side)
-        return self._layer_factor("_queries", layer, lambda: responder_queries(self.w, self.table, layer))
+        return self._held("_queries", layer, lambda: responder_queries(self.w, self.table, layer))
 
     def readouts(self, layer: int):  # -> [H, V, dh]  (W_O Lin(N_f) W_U)^T (value side)
-        return self._layer_factor("_readouts", layer, lambda: responder_readouts(self.w, layer))
+        return self._held("_readouts", layer, lambda: responder_readouts(self.w, layer))
 
     def directions(self):  # -> [V, d]  unit effective unembedding directions
-        return self._layer_factor("_directions", -1, lambda: unembed_directions(self.w))
+        return self._held("_directions", -1, lambda: unembed_directions(self.w))
 
     def unembed_queries(self, layer: int):  # -> [H, V, dh]
-        return self._layer_factor("_unembed_queries", layer, lambda: unembed_queries(self.w, self.directions(), layer))
+        return self._held("_unembed_queries", layer, lambda: unembed_queries(self.w, self.directions(), layer))
 
     def alpha(self, writer: Head):  # -> [V]  o_U(t) . u_t
         def build():
             (lU, hU) = writer
             return unembed_coefficients(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU], self.directions())
-        return self._layer_factor("_alpha", writer, build)
+        return self._held("_alpha", writer, build)
 
     def write_fraction(self, writer: Head, part: str) -> float:
         """Fraction of the writer's squared write carried by ``part`` (1 for ``full``)."""

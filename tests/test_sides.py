@@ -356,3 +356,94 @@ def test_cli_side_options(small, tmp_path):
         res = runner.invoke(main, ["scan", str(small.dir), "-o", str(tmp_path / "x.h5"), *args, "-q"])
         assert res.exit_code == 2
         assert res.stderr.count("\n") == 1 and "Traceback" not in res.stderr
+
+
+# ---------------------------------------------------------------------------
+# the demo: recovery of what was planted
+# ---------------------------------------------------------------------------
+
+DEMO_WRITERS, DEMO_RESPONDERS = "1.1,1.3", "2"  # the side circuits' writers against layer 2
+
+
+@pytest.fixture(scope="module")
+def demo_scans(tmp_path_factory):
+    """Restricted scans of the invented demo model, one per side and query part."""
+    from composition.demo import build_demo
+
+    root = tmp_path_factory.mktemp("demo")
+    w = load_weights(build_demo(root / "model"))
+    runs = {("query", "full"): DEMO_WRITERS, ("query", "unembed"): DEMO_WRITERS, ("query", "rest"): DEMO_WRITERS,
+            ("key", "full"): DEMO_WRITERS, ("value", "full"): "1.1"}
+    return {(side, part): run_scan(w, root / f"{side}-{part}.h5",
+                                   ScanOptions(side=side, query_part=part, writers=writers, responders=DEMO_RESPONDERS))
+            for (side, part), writers in runs.items()}
+
+
+def _labelled(scan) -> dict:
+    lab = scan.label
+    return {((int(a), int(b)), (int(c), int(e))): int(lab[a, b, c, e])
+            for a, b, c, e in np.argwhere((lab == 1) | (lab == -1))}
+
+
+def _selected(expected: dict, writers: str) -> dict:
+    heads = {tuple(int(x) for x in h.split(".")) for h in writers.split(",")}
+    return {pair: v for pair, v in expected.items() if pair[0] in heads and pair[1][0] == 2}
+
+
+def test_demo_key_side_finds_the_induction_like_pair(demo_scans):
+    """Recovery of what was planted in the invented demo model: the previous-token-like writer 1.1
+    (moves the token's block-A component into block B) and the induction-like responder 2.0 (queries
+    with the token's own block A, keys on block B) are labelled attention-raising by the key side and
+    neutral by the query side; the key side labels exactly the planted key-side pairs of the selection.
+
+    Source: recovery of what was planted (composition.demo.SIDE_CIRCUITS, PLANTED_KEY_PAIRS)"""
+    from composition.demo import PLANTED_KEY_PAIRS, PLANTED_PAIRS
+
+    key, query = demo_scans[("key", "full")], demo_scans[("query", "full")]
+    assert key.attrs["side"] == "key"
+    assert key.label[1, 1, 2, 0] == +1 and query.label[1, 1, 2, 0] == 0
+    assert key.top_share[1, 1, 2, 0][-1] > 0.9
+    assert _labelled(key) == _selected(PLANTED_KEY_PAIRS, DEMO_WRITERS)
+    assert _labelled(query) == _selected(PLANTED_PAIRS, DEMO_WRITERS)
+
+
+def test_demo_value_side_finds_the_copy_through_pair(demo_scans):
+    """Recovery of what was planted in the invented demo model: responder 2.2 moves writer 1.1's
+    block-B write back into the token's block A, so the pair copies the token through to its own
+    logit: the value side labels it (+1) and no other pair of the selection.
+
+    Source: recovery of what was planted (composition.demo.PLANTED_VALUE_PAIRS)"""
+    from composition.demo import PLANTED_VALUE_PAIRS
+
+    value = demo_scans[("value", "full")]
+    assert value.attrs["side"] == "value" and value.attrs["orientation"] == "row"
+    assert _labelled(value) == _selected(PLANTED_VALUE_PAIRS, "1.1") == {((1, 1), (2, 2)): +1}
+    assert value.top_share[1, 1, 2, 2][-1] > 0.9
+
+
+def test_demo_mediation_parts(demo_scans):
+    """Recovery of what was planted in the invented demo model: responder 2.4 reads writer 1.3 only
+    through the write's projection on the token's unembedding direction (top-k shares survive
+    `unembed`, fall to their null value under `rest`), responder 2.1 reads writer 1.1 only through
+    another direction (the reverse); each part's write fraction is stored beside its shares, and the
+    unembed fraction of the on-unembedding writer is not small.
+
+    Source: recovery of what was planted (composition.demo.PLANTED_MEDIATION)"""
+    from composition.demo import PLANTED_MEDIATION
+
+    scans = {p: demo_scans[("query", p)] for p in ("full", "unembed", "rest")}
+    k = int(scans["full"].k[-1])
+    null = k / scans["full"].attrs["keys_per_row"]
+    for (u, r), carrier in PLANTED_MEDIATION.items():
+        ix = u + r
+        other = "rest" if carrier == "unembed" else "unembed"
+        full_top = scans["full"].top_share[ix][-1]
+        assert scans["full"].label[ix] == +1 and full_top > 0.9
+        assert scans[carrier].label[ix] == +1
+        assert scans[carrier].top_share[ix][-1] > 0.9 * full_top  # survives
+        assert scans[other].top_share[ix][-1] < 4 * null and scans[other].bottom_share[ix][-1] < 4 * null  # vanishes
+        assert scans["full"].write_fraction[ix] == 1.0
+        assert scans["unembed"].write_fraction[ix] + scans["rest"].write_fraction[ix] == pytest.approx(1.0)
+        assert scans[carrier].attrs["query_part"] == carrier
+    assert scans["unembed"].write_fraction[1, 3, 2, 4] > 0.2  # the on-unembedding part is not a sliver
+    assert scans["unembed"].write_fraction[1, 1, 2, 1] < 0.02  # the off-unembedding writer barely has one
