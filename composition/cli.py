@@ -71,7 +71,8 @@ def scan_options(f):
         click.option("--position", default="none", show_default=True, metavar="none|mean|N",
                      help="Position embedding added to the token table: none, the mean row, or row N."),
         click.option("--orientation", type=click.Choice(ORIENTATIONS), default="row", show_default=True,
-                     help="Rank the diagonal within its row (fixed written token) or its column (fixed key token)."),
+                     help="Rank the diagonal within its row or its column; rows are written tokens on the query "
+                          "and value sides, query tokens on the key side."),
         click.option("--k", "ks", default="1,5,10", show_default=True, metavar="K1,K2,..",
                      help="The k of the top-k and bottom-k shares."),
         click.option("--fdr", type=float, default=DEFAULT_FDR, show_default=True,

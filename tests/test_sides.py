@@ -8,7 +8,6 @@ and recovery of what was planted in the invented demo model.
 from __future__ import annotations
 
 import json
-import os
 
 import numpy as np
 import pytest
@@ -17,7 +16,7 @@ from click.testing import CliRunner
 
 from composition import CompositionError, load_weights
 from composition.cli import main
-from composition.factors import (key_middles, key_side, query_middles, query_part_side, query_side,
+from composition.factors import (key_middles, key_side, query_middles, query_part_side,
                                  responder_keys, responder_queries, responder_readouts, unembed_coefficients,
                                  unembed_directions, unembed_queries, value_middles, value_side, write_fraction,
                                  writer_values)
@@ -25,8 +24,8 @@ from composition.ranks import diagonal_midranks
 from composition.scan import ScanOptions, run_scan
 from composition.stats import summarise
 from composition.tables import TableOptions, token_table
-from tests.oracles import dense_gpt2 as og
-from tests.oracles import dense_sides as osd
+from .oracles import dense_gpt2 as og
+from .oracles import dense_sides as osd
 
 CFG = dict(model_type="gpt2", n_embd=64, n_head=4, n_layer=3, vocab_size=300, n_positions=32,
            layer_norm_epsilon=1e-5, activation_function="gelu_new", n_inner=None)
@@ -144,27 +143,36 @@ def test_factors_equal_dense_oracle_and_midranks_exact(small, small_tied, side, 
             np.testing.assert_array_equal(ours, ref)
 
 
-def test_key_side_rows_are_query_tokens(small):
-    """The key side's rows are query tokens ``j``: row ``j`` of the dense matrix is the score of
-    query ``N_lR(T[j]) W_Q + b_Q`` against each written token's key, so changing the responder's
-    query bias changes the rows' ranks (it varies along a row), while changing its key bias does
-    not change the matrix at all (the written-token key is the writer's linear contribution).
+def test_key_side_query_bias_counts_and_key_bias_does_not(small):
+    """The key side's rows are query tokens ``j`` with the full token-table query
+    ``N_lR(T[j]) W_Q + b_Q``: shifting the responder's query bias changes row ranks (it varies
+    along a row), and the analyzer's ranks still equal scipy's on the oracle's matrix with the same
+    shift; shifting its key bias changes nothing (the written-token key is the writer's linear
+    contribution, and ``q . b_K`` is constant over keys).
 
-    Source: METHODS.md §3b (key side), §3 (key bias constant over keys)"""
-    (writer, responder) = PAIRS[0]
-    S = _oracle(small, writer, responder, "key")
-    left, right = _factors(small, writer, responder, "key")
-    d, dh, hR = CFG["n_embd"], CFG["n_embd"] // CFG["n_head"], responder[1]
-    name = f"transformer.h.{responder[0]}.attn.c_attn.bias"
-    for block, expect_same in ((1, True), (0, False)):  # 1: key bias, 0: query bias
+    Reference library: scipy.stats.rankdata; Source: METHODS.md §3b (key side), §3 (key bias)"""
+    import dataclasses
+
+    writer, responder = PAIRS[0]
+    (lR, hR), d, dh = responder, CFG["n_embd"], CFG["n_embd"] // CFG["n_head"]
+    base = diagonal_midranks(*_factors(small, writer, responder, "key")).numpy()
+    name = f"transformer.h.{lR}.attn.c_attn.bias"
+    for block, field in ((0, "b_Q"), (1, "b_K")):
         sd = dict(small.sd)
         bias = sd[name].copy()
         bias[block * d + hR * dh:block * d + (hR + 1) * dh] += 3.0
         sd[name] = bias
-        S2 = osd.dense_key_matrix(sd, CFG, small.T_oracle, writer, responder)
-        assert np.array_equal(S2, S) == expect_same
-    ranks = diagonal_midranks(left, right).numpy()
-    np.testing.assert_array_equal(ranks, og.midranks_rows(S))
+        attn = small.w.layers[lR].attn
+        shifted = getattr(attn, field).clone()
+        shifted[hR] += 3.0
+        layers = list(small.w.layers)
+        layers[lR] = dataclasses.replace(layers[lR], attn=dataclasses.replace(attn, **{field: shifted}))
+        m = Small.__new__(Small)
+        m.__dict__.update(small.__dict__, w=dataclasses.replace(small.w, layers=tuple(layers)))
+        ours = diagonal_midranks(*_factors(m, writer, responder, "key")).numpy()
+        ref = og.midranks_rows(osd.dense_key_matrix(sd, CFG, small.T_oracle, writer, responder))
+        np.testing.assert_array_equal(ours, ref)
+        assert np.array_equal(ours, base) == (field == "b_K")
 
 
 def test_value_side_refuses_column_orientation(small):
