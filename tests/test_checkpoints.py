@@ -219,6 +219,38 @@ def test_family_override_and_layout_file(models, tmp_path):
     assert load_weights(other, family="gpt2").fingerprint() == w.fingerprint()
 
 
+def test_layout_file_for_grouped_query_rotary_model(models, tmp_path):
+    """A layout file with separate q/k/v, grouped keys, RMSNorm, a gated MLP and linear-scaled
+    rotary (the docs/families.md example, renamed to the Llama export's tensors) gives the
+    same canonical weights as the Llama reader.
+    Reference library: transformers (the Llama checkpoint the layout file describes).
+    """
+    _, d, w = models["llama-gqa"]
+    p = "model.layers.{i}."
+    layout = {
+        "family": "my-decoder", "layers": 2, "heads": 4, "kv_heads": 2, "head_dim": 16, "placement": "pre",
+        "norm": "rmsnorm", "norm_eps": 1e-6, "activation": "silu", "matrix_order": "out-in",
+        "rotary": {"dims": 16, "style": "split-half", "base": 10000.0,
+                   "scaling": {"rope_type": "linear", "factor": 2.0}},
+        "tensors": {
+            "embed": "model.embed_tokens.weight", "unembed": "lm_head.weight", "final_norm_weight": "model.norm.weight",
+            "attn_norm_weight": p + "input_layernorm.weight", "mlp_norm_weight": p + "post_attention_layernorm.weight",
+            "q": p + "self_attn.q_proj.weight", "k": p + "self_attn.k_proj.weight",
+            "v": p + "self_attn.v_proj.weight", "o": p + "self_attn.o_proj.weight",
+            "mlp_gate": p + "mlp.gate_proj.weight", "mlp_in": p + "mlp.up_proj.weight",
+            "mlp_out": p + "mlp.down_proj.weight",
+        },
+    }
+    lf = tmp_path / "layout.json"
+    lf.write_text(json.dumps(layout))
+    wl = load_weights(d, layout_file=lf)
+    assert wl.layers[0].attn.kv_heads == 2 and wl.rotary.scaling == "linear"
+    assert wl.fingerprint() == w.fingerprint()
+    layout["rotary"]["style"] = "interleaved"  # a different convention is a different model
+    lf.write_text(json.dumps(layout))
+    assert load_weights(d, layout_file=lf).fingerprint() != w.fingerprint()
+
+
 @pytest.mark.parametrize("name", ["gpt2", "neox-parallel", "llama-gqa", "bert-encoder"])
 def test_inspect_shows_every_fact(models, name):
     """`composition inspect` prints family, sizes, norm kind and placement, rotary,
