@@ -158,8 +158,9 @@ def test_sharded_and_single_file_scans_are_bit_identical(models, tmp_path):
 
 
 def test_torch_and_hdf5_files_read_the_same_weights(models, tmp_path):
-    """A torch state dict (torch.save) and an HDF5 export in the documented layout (groups
-    by '/', one dataset per tensor) give the same canonical weights as the safetensors file.
+    """A torch state dict (torch.save, whole and in two shards behind an index) and an HDF5
+    export in the documented layout (groups by '/', one dataset per tensor) give the same
+    canonical weights as the safetensors file.
     Reference library: torch (torch.save), h5py, safetensors.
     """
     import h5py
@@ -175,7 +176,17 @@ def test_torch_and_hdf5_files_read_the_same_weights(models, tmp_path):
         f.attrs["config"] = (d / "config.json").read_text()  # config as a root attribute
         for name, t in sd.items():
             f.create_dataset(name.replace(".", "/"), data=t.numpy())
+    sdir = tmp_path / "torch-sharded"  # two torch shards behind a JSON index
+    sdir.mkdir()
+    (sdir / "config.json").write_text((d / "config.json").read_text())
+    names = sorted(sd)
+    halves = {"part-1.bin": names[: len(names) // 2], "part-2.bin": names[len(names) // 2:]}
+    for fname, part in halves.items():
+        torch.save({n: sd[n] for n in part}, sdir / fname)
+    (sdir / "pytorch_model.bin.index.json").write_text(json.dumps(
+        {"weight_map": {n: f for f, part in halves.items() for n in part}}))
     fp = w.fingerprint()
+    assert load_weights(sdir).fingerprint() == fp
     assert load_weights(tdir).fingerprint() == fp
     assert load_weights(hdir).fingerprint() == fp
     assert load_weights(hdir / "weights.h5").fingerprint() == fp
