@@ -192,6 +192,28 @@ def test_torch_and_hdf5_files_read_the_same_weights(models, tmp_path):
     assert load_weights(hdir / "weights.h5").fingerprint() == fp
 
 
+def test_layers_are_read_lazily_within_a_memory_budget(tmp_path, monkeypatch):
+    """With a layer budget smaller than one layer, at most two layers (layer 0 and the last
+    used) stay in memory, evicted layers are re-read on use, and the weights and a scan are
+    bit-identical to those read with every layer kept.
+    Common practice, no source (lazy loading must not change a number).
+    """
+    from composition.checkpoints import _build
+
+    hf.build("llama", tmp_path / "m", num_hidden_layers=3)
+    full = load_weights(tmp_path / "m")
+    opts = ScanOptions(k=(1,), writers="0.0,1.1", responders="2.0,2.3")
+    a = run_scan(full, tmp_path / "a.h5", opts)
+    monkeypatch.setattr(_build, "CACHE_BYTES", 1)
+    lean = load_weights(tmp_path / "m")
+    assert len(lean.layers.cached()) <= 2 and 0 in lean.layers.cached()
+    assert lean.fingerprint() == full.fingerprint()
+    b = run_scan(lean, tmp_path / "b.h5", opts)
+    assert len(lean.layers.cached()) <= 2
+    for key in a.arrays:
+        assert a.arrays[key].tobytes() == b.arrays[key].tobytes(), key
+
+
 def test_family_override_and_layout_file(models, tmp_path):
     """--family reads a checkpoint whose config names no known model type, and a layout
     file describing the GPT-2 tensors gives the same canonical weights (fingerprint) as

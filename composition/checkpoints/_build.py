@@ -60,8 +60,9 @@ class LazyLayers(Sequence):
     A scan that touches a few layers of a large model reads only those layers' tensors.
     """
 
-    def __init__(self, n: int, load: Callable[[int], Layer], budget: int = CACHE_BYTES):
-        self._n, self._load, self._budget = n, load, budget
+    def __init__(self, n: int, load: Callable[[int], Layer], budget: int | None = None):
+        self._n, self._load = n, load
+        self._budget = CACHE_BYTES if budget is None else budget
         self._cache: OrderedDict[int, Layer] = OrderedDict()
         self._bytes: dict[int, int] = {}
 
@@ -86,6 +87,10 @@ class LazyLayers(Sequence):
             victim = next(j for j in self._cache if j != 0 and j != i)
             del self._cache[victim], self._bytes[victim]
         return layer
+
+    def cached(self) -> list[int]:
+        """Indices of the layers held in memory now."""
+        return list(self._cache)
 
 
 def _layer_bytes(layer: Layer) -> int:
