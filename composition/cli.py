@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import sys
 import time
 from pathlib import Path
@@ -60,8 +61,41 @@ def _ks(value: str) -> tuple[int, ...]:
     return ks
 
 
+def _offsets(single, span) -> tuple[int, int] | None:
+    """``--rotary-offset N`` -> (N, N); ``--rotary-offsets A:B`` -> (A, B); neither -> None."""
+    if single is not None and span is not None:
+        raise CompositionError("give either --rotary-offset or --rotary-offsets, not both.")
+    if single is not None:
+        return (single, single)
+    if span is None:
+        return None
+    parts = span.split(":")
+    try:
+        first, last = (int(p) for p in parts)
+    except ValueError:
+        raise CompositionError(f"--rotary-offsets {span!r} is not of the form A:B with integers A <= B.") from None
+    return (first, last)
+
+
+def checkpoint_options(f):
+    """How to read the checkpoint and which rotary offsets to fold into the query side."""
+    for opt in reversed([
+        click.option("--family", default=None, metavar="NAME",
+                     help="Read the checkpoint as this family instead of detecting it: gpt2, gpt-neox, llama, bert."),
+        click.option("--layout", default=None, type=click.Path(), metavar="FILE.json",
+                     help="A layout file mapping tensor names to the canonical weights (docs/families.md)."),
+        click.option("--rotary-offset", type=click.IntRange(min=0), default=None, metavar="N",
+                     help="Rotary models: score at relative offset N = destination - source (default 0: no rotation)."),
+        click.option("--rotary-offsets", default=None, metavar="A:B",
+                     help="Rotary models: average the rotation uniformly over offsets A..B."),
+    ]):
+        f = opt(f)
+    return f
+
+
 def scan_options(f):
     """The options shared by every command that computes token matrices."""
+    f = checkpoint_options(f)
     for opt in reversed([
         click.option("--writers", metavar="SPEC", help="Writer heads: layers and layer.head labels, e.g. 1,2.3 (default: all)."),
         click.option("--responders", metavar="SPEC", help="Responder heads, same form (default: all)."),
@@ -82,9 +116,11 @@ def scan_options(f):
     return f
 
 
-def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect) -> ScanOptions:
+def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect,
+                  family=None, layout=None, rotary_offset=None, rotary_offsets=None) -> ScanOptions:
     return ScanOptions(table=table, position=_position(position), orientation=orientation, k=_ks(ks),
-                       fdr=fdr, min_effect=min_effect, writers=writers, responders=responders)
+                       fdr=fdr, min_effect=min_effect, writers=writers, responders=responders,
+                       rotary_offsets=_offsets(rotary_offset, rotary_offsets), family=family, layout=layout)
 
 
 @main.command()
@@ -101,6 +137,8 @@ def scan(checkpoint, out, overwrite, quiet, **kw):
     """
     options = _make_options(**kw)
     result = _run(checkpoint, out, options, overwrite, quiet)
+    for note in json.loads(result.attrs.get("reader_notes", "[]")):
+        click.echo(f"reader: {note}")
     _print_findings(result)
 
 
@@ -139,33 +177,14 @@ def _print_findings(result) -> None:
 
 @main.command()
 @click.argument("checkpoint", type=click.Path())
-def inspect(checkpoint):
-    """Show what was read from CHECKPOINT: family, sizes, norms, tensors, fingerprint."""
-    from .checkpoints import load_weights
+@checkpoint_options
+def inspect(checkpoint, family, layout, rotary_offset, rotary_offsets):
+    """Show what was read from CHECKPOINT: family, sizes, norms, rotary, tensors, fingerprint."""
+    from .checkpoints import describe_weights, load_weights
 
-    w = load_weights(checkpoint)
-    layer = w.layers[0]
-    rows = [
-        ("source", w.source),
-        ("family", w.family),
-        ("vocabulary", w.vocab_size),
-        ("layers x heads", f"{w.n_layers} x {w.n_heads}"),
-        ("model width / head width", f"{w.d_model} / {w.d_head}"),
-        ("key/value heads", f"{layer.attn.kv_heads}" + (" (grouped-query)" if layer.attn.kv_heads < w.n_heads else "")),
-        ("norm", f"{layer.attn_norm.kind}, {w.placement}-norm placement, eps {layer.attn_norm.eps:g}"),
-        ("MLP", f"{layer.mlp.activation}{', gated' if layer.mlp.W_gate is not None else ''}, width {layer.mlp.W_in.shape[1]}"),
-        ("positions", "learned" if w.W_pos is not None else "none learned"),
-        ("rotary", "none" if w.rotary is None else f"{w.rotary.dims} dims, {w.rotary.style}"),
-        ("unembedding", {"tied": "tied to the input embedding", "lm-head": "separate LM head",
-                         "input-embedding": "input embedding used as readout (no LM head in the checkpoint)"}[w.readout]),
-        ("attention scale", f"{w.scale:.6g}"),
-        ("tensors used", f"{len(w.tensors_used)}"),
-        ("tensors ignored", ", ".join(w.tensors_ignored) if w.tensors_ignored else "none"),
-        ("fingerprint", w.fingerprint()),
-    ]
-    width = max(len(k) for k, _ in rows)
-    for key, value in rows:
-        click.echo(f"{key:<{width}}  {value}")
+    w = load_weights(checkpoint, family=family, layout_file=layout)
+    for key, value in describe_weights(w, _offsets(rotary_offset, rotary_offsets)):
+        click.echo(f"{key:<26}  {value}")
 
 
 @main.command()

@@ -12,7 +12,7 @@ import hashlib
 import json
 import os
 import re
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Callable
 
@@ -23,6 +23,7 @@ from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
 from .ranks import diagonal_midranks
+from .rotary import offsets_rotation
 from .scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, check_writable, empty_pairs, load_scan,
                        write_scan)
 from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
@@ -45,6 +46,9 @@ class ScanOptions:
     writers: str | None = None  # e.g. "1,2.3": whole layers or layer.head labels
     responders: str | None = None
     block_rows: int = 256
+    rotary_offsets: tuple[int, int] | None = None  # (A, B): mean rotation over delta in [A, B]; None: 0 for rotary models
+    family: str | None = None  # reader override (not a result option: the weights fingerprint covers it)
+    layout: str | None = None  # layout file for an unknown family (likewise)
 
     def validate(self) -> None:
         if self.table not in TABLES:
@@ -57,6 +61,10 @@ class ScanOptions:
             raise CompositionError("--fdr must lie strictly between 0 and 1.")
         if not 0 <= self.min_effect < 0.5:
             raise CompositionError("--min-effect must lie in [0, 0.5).")
+        if self.rotary_offsets is not None:
+            a, b = self.rotary_offsets
+            if not 0 <= int(a) <= int(b):
+                raise CompositionError(f"--rotary-offsets {a}:{b} must satisfy 0 <= A <= B.")
 
 
 @dataclass
@@ -102,8 +110,10 @@ def scan_pairs(w: Weights, options: ScanOptions) -> list[tuple[Head, Head]]:
 def result_options(options: ScanOptions) -> dict:
     """The options that change a scan's numbers (they enter the fingerprint)."""
     d = asdict(options)
-    for key in ("writers", "responders", "block_rows"):
+    for key in ("writers", "responders", "block_rows", "family", "layout"):
         d.pop(key)
+    r = options.rotary_offsets
+    d["rotary_offsets"] = "none" if r is None else f"{int(r[0])}:{int(r[1])}"
     d["k"] = [int(k) for k in options.k]
     d["position"] = "none" if options.position is None else str(options.position)
     d["side"] = "query"
@@ -120,14 +130,17 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     if out.is_dir():
         raise CompositionError(f"{out} is a directory, not a scan file path.")
     check_writable(out)
-    w = checkpoint if isinstance(checkpoint, Weights) else load_weights(checkpoint)
+    w = checkpoint if isinstance(checkpoint, Weights) else load_weights(checkpoint, options.family, options.layout)
+    rotation = offsets_rotation(w, options.rotary_offsets)  # [dh, dh] or None
+    if w.rotary is not None and options.rotary_offsets is None:
+        options = replace(options, rotary_offsets=(0, 0))  # the default, recorded as such
     pairs = scan_pairs(w, options)
     T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
     ks = tuple(int(k) for k in options.k)
     L, H, V = w.n_layers, w.n_heads, w.vocab_size
     arrays = empty_pairs(L, H, len(ks), HIST_BINS)
 
-    factors = _FactorCache(w, T)
+    factors = _FactorCache(w, T, rotation)
     units = work_units(pairs)
     done = 0
     for unit in units:
@@ -164,8 +177,8 @@ def work_units(pairs: list[tuple[Head, Head]]) -> list[WorkUnit]:
 class _FactorCache:
     """Writer values and responder keys, built once per layer and kept for the next unit."""
 
-    def __init__(self, w: Weights, table):
-        self.w, self.table = w, table
+    def __init__(self, w: Weights, table, rotation=None):
+        self.w, self.table, self.rotation = w, table, rotation  # rotation [dh, dh] or None
         self._values: tuple[int, object] | None = None
         self._keys: tuple[int, object] | None = None
 
@@ -186,7 +199,7 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
     (lU, hU), lR = unit.writer, unit.responder_layer
     A = factors.values(lU)[hU]  # [V, dh]
     K = factors.keys(lR)  # [H, V, dh]
-    middles = query_middles(w, lU, hU, lR)  # [H, dh, dh]
+    middles = query_middles(w, lU, hU, lR, rotation=factors.rotation)  # [H, dh, dh]
     ks = tuple(int(k) for k in options.k)
     out = {}
     for hR in unit.responder_heads:
@@ -234,6 +247,9 @@ def _attrs(w: Weights, options: ScanOptions, ks, n_pairs: int) -> dict:
         "table": options.table,
         "position": opts["position"],
         "orientation": options.orientation,
+        "rotary_offsets": opts["rotary_offsets"],
+        "readout": w.readout,
+        "reader_notes": json.dumps(list(w.notes)),
         "k": list(ks),
         "fdr": options.fdr,
         "min_effect": options.min_effect,
