@@ -155,7 +155,12 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     with Guard() as guard:
         try:
             with guard.critical():
-                store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS), overwrite)
+                try:
+                    store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
+                                        overwrite)
+                except ScanWriteError as exc:
+                    left = "it is left as it was" if out.exists() else "nothing was written"
+                    raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); {left}.") from None
             with store:
                 if not store.complete:
                     run.begin(store)

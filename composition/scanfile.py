@@ -327,11 +327,11 @@ class ScanStore:
             store._reset_journal()
             write_scan(path, attrs, arrays)
             store._remove_stale_temporaries()
-        except OSError as exc:
+        except BaseException as exc:
+            _remove(store.journal)  # ours: we hold its lock and have just emptied it
             store.close()
-            raise ScanWriteError(path, exc) from None
-        except BaseException:
-            store.close()
+            if isinstance(exc, OSError):
+                raise ScanWriteError(path, exc) from None
             raise
         return store
 
