@@ -38,7 +38,8 @@ def available() -> bool:
     return True
 
 
-def _distributed():
+def require_dask():
+    """The ``distributed`` module, or a CompositionError naming the extra to install."""
     try:
         import distributed
     except ImportError:
@@ -55,7 +56,7 @@ def run_units(todo: list, commit: Callable[[int, dict], None], *, checkpoint: st
     ``address``: a running scheduler (``tcp://host:8786``); otherwise a local cluster of
     ``workers`` processes is started here and stopped at the end.
     """
-    distributed = _distributed()
+    distributed = require_dask()
     if not todo:
         return
     cluster = client = None
@@ -73,7 +74,7 @@ def run_units(todo: list, commit: Callable[[int, dict], None], *, checkpoint: st
             torch_threads = max(1, (os.cpu_count() or 1) // n)
         else:
             try:
-                client = distributed.Client(address, timeout="20s")
+                client = distributed.Client(address)  # timeout: distributed.comm.timeouts.connect
             except (OSError, TimeoutError, ValueError) as exc:
                 raise CompositionError(f"cannot reach the Dask scheduler at {address} ({exc}).") from None
             torch_threads = None

@@ -146,6 +146,10 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
         raise CompositionError("--workers needs a positive number of processes.")
     if remote and isinstance(checkpoint, Weights):
         raise CompositionError("a cluster scan needs the checkpoint's path, which the workers read themselves.")
+    if remote:
+        from .cluster import require_dask
+
+        require_dask()
     w = checkpoint if isinstance(checkpoint, Weights) else load_weights(checkpoint)
     pairs = scan_pairs(w, options)
     ks = tuple(int(k) for k in options.k)
