@@ -135,7 +135,11 @@ def _run(checkpoint, out, options, overwrite, quiet, **execution):
         if printer is not None:
             printer(event)
 
-    result = run_scan(checkpoint, out, options, overwrite=overwrite, progress=progress, **execution)
+    try:
+        result = run_scan(checkpoint, out, options, overwrite=overwrite, progress=progress, **execution)
+    finally:
+        if printer is not None:
+            printer.close()
     if not quiet:
         if computed:
             click.echo(f"scanned {int(result.done.sum())} pairs in {time.monotonic() - start:.1f} s; "

@@ -19,8 +19,10 @@ from __future__ import annotations
 import json
 import logging
 import os
+import signal
 import threading
 import uuid
+from contextlib import contextmanager
 from typing import Callable
 
 from .errors import CompositionError
@@ -65,12 +67,14 @@ def run_units(todo: list, commit: Callable[[int, dict], None], *, checkpoint: st
         if address is None:
             n = int(workers or 1)
             try:
-                cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                                                   host="127.0.0.1", dashboard_address=None,
-                                                   silence_logs=logging.ERROR)
+                with _sigint_ignored():  # the workers inherit it: Ctrl-C is for this process alone
+                    cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                                                       host="127.0.0.1", dashboard_address=None,
+                                                       silence_logs=logging.ERROR)
             except Exception as exc:  # noqa: BLE001  (any failure to start is one sentence)
                 raise CompositionError(f"cannot start a local Dask cluster of {n} workers ({exc}).") from None
             client = distributed.Client(cluster)
+            client.register_plugin(_ignore_sigint_plugin(distributed), name="composition-ignore-sigint")  # restarted workers too
             torch_threads = max(1, (os.cpu_count() or 1) // n)
         else:
             try:
@@ -96,6 +100,34 @@ def run_units(todo: list, commit: Callable[[int, dict], None], *, checkpoint: st
                     thing.close()
                 except Exception:  # noqa: BLE001  (closing after a failure must not hide it)
                     pass
+
+
+@contextmanager
+def _sigint_ignored():
+    """Ignore SIGINT while worker processes start (an ignored signal stays ignored across exec,
+    and Python then installs no KeyboardInterrupt handler), so that Ctrl-C in the terminal
+    reaches the client alone; the client stops the workers itself."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _ignore_sigint_plugin(distributed):
+    """A worker plugin whose ``setup`` (run in the worker's main thread) ignores SIGINT there."""
+
+    class IgnoreSigint(distributed.WorkerPlugin):
+        def setup(self, worker):
+            try:
+                signal.signal(signal.SIGINT, signal.SIG_IGN)
+            except ValueError:
+                pass
+
+    return IgnoreSigint()
 
 
 def _result(future, unit, distributed) -> dict:

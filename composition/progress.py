@@ -113,6 +113,13 @@ class ProgressPrinter:
             self._line(status_line(p))
             self._last = now
 
+    def close(self) -> None:
+        """End a status line left on the terminal (after an interruption or a failure)."""
+        if self._drawn:
+            self.stream.write("\n")
+            self.stream.flush()
+            self._drawn = False
+
     def _clear(self) -> None:
         self.stream.write("\r\x1b[K")
         self._drawn = False
