@@ -204,6 +204,56 @@ def test_torn_or_corrupt_last_record_is_dropped(model, reference, tmp_path):
     assert_same_pairs(run_scan(model, out), ref)
 
 
+def test_folding_moves_committed_units_into_the_hdf5_file(model, reference, tmp_path, monkeypatch):
+    """With folding after every commit, the HDF5 file alone holds every committed unit and the
+    journal holds none; a kill between the two steps replays records the file has already,
+    which changes nothing; the resume equals the uninterrupted scan.
+
+    Common practice, no source (checkpointing a write-ahead log into the main file).
+    """
+    from composition import scanfile
+
+    ref, _ = reference
+    out = tmp_path / "folded.h5"
+    monkeypatch.setattr(scanfile, "FOLD_SECONDS", 0.0)
+    with pytest.raises(RuntimeError):
+        run_scan(model, out, progress=stop_after(3))
+    _, arrays = scanfile.read_scan_file(out)
+    assert int(arrays["done"].sum()) == 12
+    attrs = load_scan(out).attrs
+    assert list(scanfile.read_journal(journal_path(out), attrs["scan_id"])) == []
+    monkeypatch.setattr(scanfile, "FOLD_SECONDS", 1e9)
+    with pytest.raises(RuntimeError):
+        run_scan(model, out, progress=stop_after(2))  # these two stay in the journal only
+    journal_bytes = journal_path(out).read_bytes()
+    monkeypatch.setattr(scanfile, "FOLD_SECONDS", 0.0)
+    with pytest.raises(RuntimeError):
+        run_scan(model, out, progress=stop_after(1))  # folds all 6 units into the file
+    journal_path(out).write_bytes(journal_bytes)  # as if killed before the journal was emptied
+    assert int(load_scan(out).done.sum()) == 24
+    assert_partial_is_consistent(load_scan(out), ref, units_of(model))
+    monkeypatch.setattr(scanfile, "FOLD_SECONDS", 1e9)
+    assert_same_pairs(run_scan(model, out), ref)
+
+
+def test_a_second_scan_of_the_same_file_is_refused(model, tmp_path):
+    """While one scan writes a file (holding its journal's lock), another scan of it stops at
+    once with a sentence.
+
+    Common practice, no source (advisory file locks, flock(2)).
+    """
+    import fcntl
+
+    out = tmp_path / "locked.h5"
+    with pytest.raises(RuntimeError):
+        run_scan(model, out, progress=stop_after(1))
+    with open(journal_path(out), "rb+") as held:
+        fcntl.flock(held, fcntl.LOCK_EX)
+        with pytest.raises(CompositionError, match="another scan is writing"):
+            run_scan(model, out)
+    assert run_scan(model, out).complete
+
+
 def test_in_progress_file_is_marked_and_complete_file_is_returned_as_is(model, reference, tmp_path):
     """An unfinished file says so (status attribute, Scan.complete) and ``complete_only`` refuses
     it; rerunning a finished scan computes nothing and leaves the file's bytes alone.
