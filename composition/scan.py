@@ -159,38 +159,12 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     with Guard() as guard:
         try:
             with guard.critical():
-                try:
-                    store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
-                                        overwrite)
-                except ScanWriteError as exc:
-                    left = "it is left as it was" if out.exists() else "nothing was written"
-                    raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); {left}.") from None
+                store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS), overwrite)
             with store:
                 if not store.complete:
-                    run.begin(store)
-
-                    def commit(i: int, results: dict) -> None:
-                        index, fields = _unit_fields(results)
-                        with guard.critical():
-                            store.commit(index, fields)
-                        run.committed(i, store.arrays)
-
-                    todo = run.todo()
-                    if remote:
-                        from .cluster import run_units
-
-                        run_units(todo, commit, checkpoint=str(worker_checkpoint or Path(checkpoint).resolve()),
-                                  fingerprint=attrs["weights_fingerprint"], options=options,
-                                  address=cluster, workers=workers)
-                    else:
-                        factors = unit_factors(w, options)
-                        for i, unit in todo:
-                            commit(i, compute_unit(factors, unit, options))
-                    with guard.critical():
-                        _label_all(store.arrays, options)
-                        store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]),
-                                          finished=_now()))
-                    run.finish()
+                    _complete(store, run, guard, w, attrs, options,
+                              dict(checkpoint=checkpoint, cluster=cluster, workers=workers,
+                                   worker_checkpoint=worker_checkpoint))
         except Interrupt as stop:
             raise ScanInterrupted(
                 f"interrupted by {signal_name(stop.signum)} with {run.committed_note()}; "
@@ -202,6 +176,34 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     return load_scan(out)
 
 
+def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: dict, options: ScanOptions,
+              execution: dict) -> None:
+    """Compute the missing units, committing each as it comes, then label all pairs and finish."""
+    run.begin(store)
+
+    def commit(i: int, results: dict) -> None:
+        index, fields = _unit_fields(results)
+        with guard.critical():
+            store.commit(index, fields)
+        run.committed(i, store.arrays)
+
+    todo = run.todo()
+    if execution["cluster"] is not None or execution["workers"] is not None:
+        from .cluster import run_units
+
+        path = execution["worker_checkpoint"] or Path(execution["checkpoint"]).resolve()
+        run_units(todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
+                  address=execution["cluster"], workers=execution["workers"])
+    else:
+        factors = unit_factors(w, options)
+        for i, unit in todo:
+            commit(i, compute_unit(factors, unit, options))
+    with guard.critical():
+        _label_all(store.arrays, options)
+        store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]), finished=_now()))
+    run.finish()
+
+
 def unit_factors(w: Weights, options: ScanOptions) -> "_FactorCache":
     """What ``compute_unit`` needs besides the unit: built the same way here and on workers."""
     T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
@@ -210,7 +212,8 @@ def unit_factors(w: Weights, options: ScanOptions) -> "_FactorCache":
 
 def _open_store(out: Path, attrs: dict, arrays: dict, overwrite: bool) -> ScanStore:
     """Resume the scan file ``out`` if it exists (refusing a different scan), else start it."""
-    if out.exists() and not overwrite:
+    resume = out.exists() and not overwrite
+    if resume:
         try:
             old_attrs, old_arrays = read_scan_file(out)
         except CompositionError:
@@ -221,8 +224,12 @@ def _open_store(out: Path, attrs: dict, arrays: dict, overwrite: bool) -> ScanSt
             if name not in old_arrays or old_arrays[name].shape != data.shape:
                 raise CompositionError(f"cannot resume {out}: its dataset /pairs/{name} has another shape; "
                                        "pass --overwrite to start afresh.")
-        return ScanStore.resume(out, old_attrs, old_arrays)
-    return ScanStore.start(out, attrs, arrays)
+    try:
+        return ScanStore.resume(out, old_attrs, old_arrays) if resume else ScanStore.start(out, attrs, arrays)
+    except ScanWriteError as exc:
+        left = ("it is left as it was" if resume else
+                "the existing file is left in place" if out.exists() else "nothing was written")
+        raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); {left}.") from None
 
 
 def _check_resumable(out: Path, old: dict, new: dict) -> None:
