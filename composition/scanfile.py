@@ -19,6 +19,7 @@ dropped. See docs/long-runs.md for why this is crash-safe.
 from __future__ import annotations
 
 import errno
+import glob
 import json
 import os
 import struct
@@ -346,6 +347,10 @@ class ScanStore:
             return store
         store._lock()
         try:
+            now, _ = read_scan_file(path)  # under the lock: has another scan changed it meanwhile?
+            if now.get("scan_id") != attrs.get("scan_id"):
+                raise CompositionError(f"{path} changed while this scan was opening it (another scan "
+                                       "finished or restarted it); run the command again.")
             try:
                 data = os.pread(store._fd, os.fstat(store._fd).st_size, 0)
             except OSError as exc:
@@ -457,7 +462,7 @@ class ScanStore:
 
     def _remove_stale_temporaries(self) -> None:
         """Temporary files of earlier runs killed while writing (we hold the lock)."""
-        for stale in _directory(self.path).glob(f".{self.path.name}.*.partial"):
+        for stale in _directory(self.path).glob(f".{glob.escape(self.path.name)}.*.partial"):
             _remove(stale)
 
 
