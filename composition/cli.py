@@ -12,6 +12,8 @@ import numpy as np
 
 from .errors import CompositionError
 from .factors import ORIENTATIONS
+from .interrupts import ScanInterrupted
+from .progress import ProgressPrinter
 from .scan import ScanOptions, run_scan
 from .scanfile import CAUTION
 from .stats import DEFAULT_FDR, DEFAULT_MIN_EFFECT, LABEL_NOT_COMPUTED
@@ -21,14 +23,27 @@ _LABEL_WORDS = {1: "attention-raising", -1: "attention-lowering", 0: "neutral"}
 
 
 class _Group(click.Group):
-    """Turn a CompositionError into one sentence on stderr and exit status 2."""
+    """Turn a CompositionError into one sentence on stderr and exit status 2; an interrupted
+    scan exits 128 + the signal number (130 SIGINT, 143 SIGTERM) after saying how to resume."""
 
     def invoke(self, ctx):
         try:
             return super().invoke(ctx)
+        except ScanInterrupted as exc:
+            click.echo(f"composition: {exc}", err=True)
+            if ctx.invoked_subcommand == "scan":
+                click.echo(f"to resume: {_resume_command()}", err=True)
+            sys.exit(exc.exit_code)
         except CompositionError as exc:
             click.echo(f"composition: {exc}", err=True)
             sys.exit(2)
+
+
+def _resume_command() -> str:
+    """The command line that was run, less --overwrite (which would start afresh)."""
+    import shlex
+
+    return shlex.join(["composition"] + [a for a in sys.argv[1:] if a != "--overwrite"])
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
@@ -125,37 +140,50 @@ def _make_options(writers, responders, table, position, orientation, ks, fdr, mi
 
 @main.command()
 @click.argument("checkpoint", type=click.Path())
-@click.option("--out", "-o", required=True, type=click.Path(), help="Scan file to write (HDF5).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing scan file.")
+@click.option("--out", "-o", required=True, type=click.Path(), help="Scan file to write (HDF5); if it holds an unfinished scan, it is resumed.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing scan file and start afresh.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
 @scan_options
-def scan(checkpoint, out, overwrite, quiet, **kw):
+@click.option("--cluster", metavar="ADDRESS", help="Run the work units on this Dask scheduler, e.g. tcp://host:8786 (needs the cluster extra).")
+@click.option("--workers", type=click.IntRange(min=1), metavar="N", help="Run the work units on a local Dask cluster of N processes (needs the cluster extra).")
+@click.option("--worker-checkpoint", metavar="PATH", help="The checkpoint's path as the workers see it (default: CHECKPOINT's absolute path).")
+def scan(checkpoint, out, overwrite, quiet, cluster, workers, worker_checkpoint, **kw):
     """Scan every writer -> responder pair of CHECKPOINT and write a scan file.
 
     CHECKPOINT is a directory with config.json and a .safetensors file, or the
-    .safetensors file itself with config.json beside it.
+    .safetensors file itself with config.json beside it. Each work unit is committed as
+    soon as it is computed: after a crash, a reboot or Ctrl-C, run the same command again
+    to continue where it stopped.
     """
     options = _make_options(**kw)
-    result = _run(checkpoint, out, options, overwrite, quiet)
+    result = _run(checkpoint, out, options, overwrite, quiet, cluster=cluster, workers=workers,
+                  worker_checkpoint=worker_checkpoint)
     for note in json.loads(result.attrs.get("reader_notes", "[]")):
         click.echo(f"reader: {note}")
     _print_findings(result)
 
 
-def _run(checkpoint, out, options, overwrite, quiet):
+def _run(checkpoint, out, options, overwrite, quiet, **execution):
     start = time.monotonic()
-    show = (not quiet) and sys.stderr.isatty()
+    printer = None if quiet else ProgressPrinter(sys.stderr)
+    computed = []
 
-    def progress(done, total):
-        if show:
-            click.echo(f"\r  pairs {done}/{total}  {time.monotonic() - start:6.1f} s", err=True, nl=False)
+    def progress(event):
+        computed.append(event.kind)
+        if printer is not None:
+            printer(event)
 
-    result = run_scan(checkpoint, out, options, overwrite=overwrite, progress=progress)
-    if show:
-        click.echo("", err=True)
+    try:
+        result = run_scan(checkpoint, out, options, overwrite=overwrite, progress=progress, **execution)
+    finally:
+        if printer is not None:
+            printer.close()
     if not quiet:
-        click.echo(f"scanned {int(result.done.sum())} pairs in {time.monotonic() - start:.1f} s; "
-                   f"wrote {result.path}")
+        if computed:
+            click.echo(f"scanned {int(result.done.sum())} pairs in {time.monotonic() - start:.1f} s; "
+                       f"wrote {result.path}")
+        else:
+            click.echo(f"{result.path} holds this scan complete already; nothing to compute")
     return result
 
 

@@ -26,7 +26,7 @@ from composition import CompositionError, ScanOptions, load_scan, load_weights, 
 from composition.checkpoints import describe_weights  # noqa: E402
 from composition.cli import main  # noqa: E402
 from composition.tables import TableOptions, token_table  # noqa: E402
-from oracles import hf_models as hf  # noqa: E402
+from .oracles import hf_models as hf  # noqa: E402
 
 FAMILY_CASES = {
     # name: (kind, overrides, expected family, placement, readout)

@@ -25,7 +25,7 @@ from composition.rotary import (  # noqa: E402
     inverse_frequencies, mean_rotation, offsets_rotation, rotary_from_config, rotation)
 from composition.tables import TableOptions, token_table  # noqa: E402
 from composition.weights import Rotary  # noqa: E402
-from oracles import hf_models as hf  # noqa: E402
+from .oracles import hf_models as hf  # noqa: E402
 
 T_POS = 24
 
