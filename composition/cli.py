@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import sys
 import time
 from pathlib import Path
@@ -11,6 +12,8 @@ import numpy as np
 
 from .errors import CompositionError
 from .factors import ORIENTATIONS, QUERY_PARTS, SIDES
+from .interrupts import ScanInterrupted
+from .progress import ProgressPrinter
 from .scan import ScanOptions, run_scan
 from .scanfile import CAUTION, load_scan
 from .stats import DEFAULT_FDR, DEFAULT_MIN_EFFECT, LABEL_NOT_COMPUTED
@@ -21,14 +24,27 @@ _VALUE_WORDS = {1: "copies through", -1: "suppresses", 0: "neutral"}  # --side v
 
 
 class _Group(click.Group):
-    """Turn a CompositionError into one sentence on stderr and exit status 2."""
+    """Turn a CompositionError into one sentence on stderr and exit status 2; an interrupted
+    scan exits 128 + the signal number (130 SIGINT, 143 SIGTERM) after saying how to resume."""
 
     def invoke(self, ctx):
         try:
             return super().invoke(ctx)
+        except ScanInterrupted as exc:
+            click.echo(f"composition: {exc}", err=True)
+            if ctx.invoked_subcommand == "scan":
+                click.echo(f"to resume: {_resume_command()}", err=True)
+            sys.exit(exc.exit_code)
         except CompositionError as exc:
             click.echo(f"composition: {exc}", err=True)
             sys.exit(2)
+
+
+def _resume_command() -> str:
+    """The command line that was run, less --overwrite (which would start afresh)."""
+    import shlex
+
+    return shlex.join(["composition"] + [a for a in sys.argv[1:] if a != "--overwrite"])
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
@@ -61,8 +77,41 @@ def _ks(value: str) -> tuple[int, ...]:
     return ks
 
 
+def _offsets(single, span) -> tuple[int, int] | None:
+    """``--rotary-offset N`` -> (N, N); ``--rotary-offsets A:B`` -> (A, B); neither -> None."""
+    if single is not None and span is not None:
+        raise CompositionError("give either --rotary-offset or --rotary-offsets, not both.")
+    if single is not None:
+        return (single, single)
+    if span is None:
+        return None
+    parts = span.split(":")
+    try:
+        first, last = (int(p) for p in parts)
+    except ValueError:
+        raise CompositionError(f"--rotary-offsets {span!r} is not of the form A:B with integers A <= B.") from None
+    return (first, last)
+
+
+def checkpoint_options(f):
+    """How to read the checkpoint and which rotary offsets to fold into the query side."""
+    for opt in reversed([
+        click.option("--family", default=None, metavar="NAME",
+                     help="Read the checkpoint as this family instead of detecting it: gpt2, gpt-neox, llama, bert."),
+        click.option("--layout", default=None, type=click.Path(), metavar="FILE.json",
+                     help="A layout file mapping tensor names to the canonical weights (docs/families.md)."),
+        click.option("--rotary-offset", type=click.IntRange(min=0), default=None, metavar="N",
+                     help="Rotary models: score at relative offset N = destination - source (default 0: no rotation)."),
+        click.option("--rotary-offsets", default=None, metavar="A:B",
+                     help="Rotary models: average the rotation uniformly over offsets A..B."),
+    ]):
+        f = opt(f)
+    return f
+
+
 def scan_options(f):
     """The options shared by every command that computes token matrices."""
+    f = checkpoint_options(f)
     for opt in reversed([
         click.option("--writers", metavar="SPEC", help="Writer heads: layers and layer.head labels, e.g. 1,2.3 (default: all)."),
         click.option("--responders", metavar="SPEC", help="Responder heads, same form (default: all)."),
@@ -89,43 +138,60 @@ def scan_options(f):
 
 
 def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect,
+                  family=None, layout=None, rotary_offset=None, rotary_offsets=None,
                   side="query", query_part="full") -> ScanOptions:
     return ScanOptions(table=table, position=_position(position), orientation=orientation, k=_ks(ks),
                        fdr=fdr, min_effect=min_effect, writers=writers, responders=responders,
+                       rotary_offsets=_offsets(rotary_offset, rotary_offsets), family=family, layout=layout,
                        side=side, query_part=query_part)
 
 
 @main.command()
 @click.argument("checkpoint", type=click.Path())
-@click.option("--out", "-o", required=True, type=click.Path(), help="Scan file to write (HDF5).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing scan file.")
+@click.option("--out", "-o", required=True, type=click.Path(), help="Scan file to write (HDF5); if it holds an unfinished scan, it is resumed.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing scan file and start afresh.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
 @scan_options
-def scan(checkpoint, out, overwrite, quiet, **kw):
+@click.option("--cluster", metavar="ADDRESS", help="Run the work units on this Dask scheduler, e.g. tcp://host:8786 (needs the cluster extra).")
+@click.option("--workers", type=click.IntRange(min=1), metavar="N", help="Run the work units on a local Dask cluster of N processes (needs the cluster extra).")
+@click.option("--worker-checkpoint", metavar="PATH", help="The checkpoint's path as the workers see it (default: CHECKPOINT's absolute path).")
+def scan(checkpoint, out, overwrite, quiet, cluster, workers, worker_checkpoint, **kw):
     """Scan every writer -> responder pair of CHECKPOINT and write a scan file.
 
     CHECKPOINT is a directory with config.json and a .safetensors file, or the
-    .safetensors file itself with config.json beside it.
+    .safetensors file itself with config.json beside it. Each work unit is committed as
+    soon as it is computed: after a crash, a reboot or Ctrl-C, run the same command again
+    to continue where it stopped.
     """
     options = _make_options(**kw)
-    result = _run(checkpoint, out, options, overwrite, quiet)
+    result = _run(checkpoint, out, options, overwrite, quiet, cluster=cluster, workers=workers,
+                  worker_checkpoint=worker_checkpoint)
+    for note in json.loads(result.attrs.get("reader_notes", "[]")):
+        click.echo(f"reader: {note}")
     _print_findings(result)
 
 
-def _run(checkpoint, out, options, overwrite, quiet):
+def _run(checkpoint, out, options, overwrite, quiet, **execution):
     start = time.monotonic()
-    show = (not quiet) and sys.stderr.isatty()
+    printer = None if quiet else ProgressPrinter(sys.stderr)
+    computed = []
 
-    def progress(done, total):
-        if show:
-            click.echo(f"\r  pairs {done}/{total}  {time.monotonic() - start:6.1f} s", err=True, nl=False)
+    def progress(event):
+        computed.append(event.kind)
+        if printer is not None:
+            printer(event)
 
-    result = run_scan(checkpoint, out, options, overwrite=overwrite, progress=progress)
-    if show:
-        click.echo("", err=True)
+    try:
+        result = run_scan(checkpoint, out, options, overwrite=overwrite, progress=progress, **execution)
+    finally:
+        if printer is not None:
+            printer.close()
     if not quiet:
-        click.echo(f"scanned {int(result.done.sum())} pairs in {time.monotonic() - start:.1f} s; "
-                   f"wrote {result.path}")
+        if computed:
+            click.echo(f"scanned {int(result.done.sum())} pairs in {time.monotonic() - start:.1f} s; "
+                       f"wrote {result.path}")
+        else:
+            click.echo(f"{result.path} holds this scan complete already; nothing to compute")
     return result
 
 
@@ -153,33 +219,14 @@ def _print_findings(result, note: bool = True) -> None:
 
 @main.command()
 @click.argument("checkpoint", type=click.Path())
-def inspect(checkpoint):
-    """Show what was read from CHECKPOINT: family, sizes, norms, tensors, fingerprint."""
-    from .checkpoints import load_weights
+@checkpoint_options
+def inspect(checkpoint, family, layout, rotary_offset, rotary_offsets):
+    """Show what was read from CHECKPOINT: family, sizes, norms, rotary, tensors, fingerprint."""
+    from .checkpoints import describe_weights, load_weights
 
-    w = load_weights(checkpoint)
-    layer = w.layers[0]
-    rows = [
-        ("source", w.source),
-        ("family", w.family),
-        ("vocabulary", w.vocab_size),
-        ("layers x heads", f"{w.n_layers} x {w.n_heads}"),
-        ("model width / head width", f"{w.d_model} / {w.d_head}"),
-        ("key/value heads", f"{layer.attn.kv_heads}" + (" (grouped-query)" if layer.attn.kv_heads < w.n_heads else "")),
-        ("norm", f"{layer.attn_norm.kind}, {w.placement}-norm placement, eps {layer.attn_norm.eps:g}"),
-        ("MLP", f"{layer.mlp.activation}{', gated' if layer.mlp.W_gate is not None else ''}, width {layer.mlp.W_in.shape[1]}"),
-        ("positions", "learned" if w.W_pos is not None else "none learned"),
-        ("rotary", "none" if w.rotary is None else f"{w.rotary.dims} dims, {w.rotary.style}"),
-        ("unembedding", {"tied": "tied to the input embedding", "lm-head": "separate LM head",
-                         "input-embedding": "input embedding used as readout (no LM head in the checkpoint)"}[w.readout]),
-        ("attention scale", f"{w.scale:.6g}"),
-        ("tensors used", f"{len(w.tensors_used)}"),
-        ("tensors ignored", ", ".join(w.tensors_ignored) if w.tensors_ignored else "none"),
-        ("fingerprint", w.fingerprint()),
-    ]
-    width = max(len(k) for k, _ in rows)
-    for key, value in rows:
-        click.echo(f"{key:<{width}}  {value}")
+    w = load_weights(checkpoint, family=family, layout_file=layout)
+    for key, value in describe_weights(w, _offsets(rotary_offset, rotary_offsets)):
+        click.echo(f"{key:<26}  {value}")
 
 
 @main.command()

@@ -29,8 +29,29 @@ _BLOCK = 4096
 
 
 def input_norm(w: Weights, layer: int) -> Norm:
-    """``N_l``: the norm applied to the residual before layer ``l``'s attention reads it."""
+    """``N_l``: the norm applied to the residual before layer ``l``'s attention reads it.
+
+    Post-norm: none, the residual a layer reads is already the previous layer's norm output.
+    """
     return _IDENTITY if w.placement == "post" else w.layers[layer].attn_norm
+
+
+def residual_path(w: Weights, writer_layer: int, responder_layer: int) -> torch.Tensor:
+    """The linear part of the path from a write in ``writer_layer`` to what ``responder_layer``'s
+    attention reads (METHODS §1, §3). # -> [d, d]
+
+    Pre-norm and parallel: ``Lin(N_lR)``. Post-norm: the write passes every norm after the
+    residual adds in between, ``Lin(N_attn,lU) Lin(N_mlp,lU) ... Lin(N_mlp,lR-1)``; each norm's
+    division is a positive per-row scale and its bias a constant, both left out as in §3.
+    """
+    d = w.d_model
+    if w.placement != "post":
+        return norm_linear_part(input_norm(w, responder_layer), d)
+    path = torch.eye(d, dtype=torch.float64)
+    for layer in range(writer_layer, responder_layer):
+        for norm in (w.layers[layer].attn_norm, w.layers[layer].mlp_norm):
+            path = path @ norm_linear_part(norm, d)  # [d, d]
+    return path
 
 
 def _normed_projection(w: Weights, table: torch.Tensor, layer: int, which: str) -> torch.Tensor:
@@ -54,16 +75,24 @@ def responder_keys(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
     return _normed_projection(w, table, layer, "W_K")
 
 
-def query_middles(w: Weights, writer_layer: int, writer_head: int, responder_layer: int) -> torch.Tensor:
-    """``C_UR = W_O^U Lin(N_lR) W_Q^R`` for every responder head of a layer. # -> [H_R, dh, dh]"""
+def query_middles(w: Weights, writer_layer: int, writer_head: int, responder_layer: int,
+                  rotation: torch.Tensor | None = None) -> torch.Tensor:
+    """``C_UR = W_O^U Lin(N_lR) W_Q^R [M]`` for every responder head of a layer. # -> [H_R, dh, dh]
+
+    ``rotation`` ``[dh, dh]``: the rotary ``M(delta)`` or its average over offsets
+    (composition.rotary), folded in on the right; None for no rotation (delta = 0).
+    """
     if responder_layer <= writer_layer:
         raise CompositionError(
             f"responder layer {responder_layer} must come after writer layer {writer_layer}."
         )
     W_O = w.layers[writer_layer].attn.W_O[writer_head].double()  # [dh, d]
-    lin = norm_linear_part(input_norm(w, responder_layer), w.d_model)  # [d, d]
+    lin = residual_path(w, writer_layer, responder_layer)  # [d, d]
     W_Q = w.layers[responder_layer].attn.W_Q.double()  # [H, d, dh]
-    return torch.einsum("ed,df,hfg->heg", W_O, lin, W_Q)  # [H, dh, dh]
+    middles = torch.einsum("ed,df,hfg->heg", W_O, lin, W_Q)  # [H, dh, dh]
+    if rotation is not None:
+        middles = middles @ rotation.double()  # [H, dh, dh]
+    return middles
 
 
 def query_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.Tensor,

@@ -83,7 +83,10 @@ def apply_mlp(mlp: MLP, x: torch.Tensor) -> torch.Tensor:
     """The MLP on rows of ``x``. # x [B, d] -> [B, d]"""
     h = x @ mlp.W_in.double() + mlp.b_in.double()  # [B, m]
     if mlp.W_gate is not None:
-        h = activate(mlp.activation, x @ mlp.W_gate.double()) * h
+        gate = x @ mlp.W_gate.double()  # [B, m]
+        if mlp.b_gate is not None:
+            gate = gate + mlp.b_gate.double()
+        h = activate(mlp.activation, gate) * h
     else:
         h = activate(mlp.activation, h)
     return h @ mlp.W_out.double() + mlp.b_out.double()  # [B, d]
@@ -133,9 +136,8 @@ def token_table(w: Weights, options: TableOptions = TableOptions()) -> torch.Ten
 
 def _block0(w: Weights, layer, x: torch.Tensor, with_attention: bool) -> torch.Tensor:
     """Block 0 with every head attending to its own position. # x [B, d] -> [B, d]"""
-    if w.placement == "post":
-        if with_attention:
-            x = apply_norm(layer.attn_norm, x + self_attention_output(layer.attn, x))
+    if w.placement == "post":  # x = N(x + sublayer(x)); skipping attention still passes its norm
+        x = apply_norm(layer.attn_norm, x + self_attention_output(layer.attn, x) if with_attention else x)
         return apply_norm(layer.mlp_norm, x + apply_mlp(layer.mlp, x))
     attn = self_attention_output(layer.attn, apply_norm(layer.attn_norm, x)) if with_attention else 0.0
     if w.placement == "parallel":

@@ -38,6 +38,8 @@ class Rotary:
     dims: int
     style: str
     inv_freq: torch.Tensor  # [dims // 2]
+    scaling: str = "default"  # frequency scaling from the config: default | linear | llama3 | other
+    unsupported: str | None = None  # why offsets other than 0 cannot be computed (unknown scaling)
 
 
 @dataclass(frozen=True)
@@ -55,14 +57,16 @@ class Attention:
 
 @dataclass(frozen=True)
 class MLP:
-    """``out = act(x W_in + b_in) [* (x W_gate)] W_out + b_out``; gated when ``W_gate`` is set."""
+    """``out = act(x W_in + b_in) W_out + b_out``; gated when ``W_gate`` is set:
+    ``out = (act(x W_gate + b_gate) * (x W_in + b_in)) W_out + b_out``."""
 
     W_in: torch.Tensor  # [d, m]
     b_in: torch.Tensor  # [m]
     W_out: torch.Tensor  # [m, d]
     b_out: torch.Tensor  # [d]
     activation: str  # gelu | gelu-tanh | relu | silu
-    W_gate: torch.Tensor | None = None  # [d, m]; gated MLP: act(x W_gate) * (x W_in)
+    W_gate: torch.Tensor | None = None  # [d, m]; gated MLP: act(x W_gate + b_gate) * (x W_in + b_in)
+    b_gate: torch.Tensor | None = None  # [m]
 
 
 @dataclass(frozen=True)
@@ -86,13 +90,14 @@ class Weights:
     W_pos: torch.Tensor | None  # [P, d] learned positions, None for rotary families
     W_U: torch.Tensor  # [d, V] unembedding (readout)
     final_norm: Norm  # N_f (identity for post-norm encoders)
-    layers: tuple[Layer, ...]
+    layers: tuple[Layer, ...]  # or any sequence of Layer (readers may load layers lazily)
     placement: str = "pre"
     attn_scale: float | None = None  # None: 1/sqrt(dh)
     rotary: Rotary | None = None
     embed_norm: Norm | None = None  # post-norm encoders: LayerNorm of the embeddings
     W_type: torch.Tensor | None = None  # [d] token-type 0 row, added to every embedding
     readout: str = "tied"  # tied | lm-head | input-embedding (no LM head in checkpoint)
+    notes: tuple[str, ...] = ()  # plain sentences on what the reader assumed or left out
     tensors_used: tuple[str, ...] = ()
     tensors_ignored: tuple[str, ...] = ()
     source: str = ""

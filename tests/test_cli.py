@@ -86,7 +86,7 @@ def test_head_label_that_does_not_exist(small_model, tmp_path, spec, words):
 
 def test_output_path_that_cannot_be_written(small_model, tmp_path):
     path, _, _ = small_model
-    _assert_one_sentence(_run("scan", path, "--out", tmp_path / "no" / "such" / "s.h5"), "does not exist")
+    _assert_one_sentence(_run("scan", path, "--out", tmp_path / "no" / "such" / "s.h5"), "s.h5", "cannot write")
     if os.path.isdir("/proc"):  # not writable even for root
         _assert_one_sentence(_run("scan", path, "--out", "/proc/composition-test.h5"), "cannot write")
     locked = tmp_path / "locked"

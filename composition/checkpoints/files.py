@@ -1,13 +1,30 @@
 """Checkpoint files: locate them, read the config, and hand out tensors one at a time.
 
-A :class:`TensorSource` is the only thing a family reader sees of the files. Tensors are
-read lazily, by name, so reading a few layers of a large checkpoint does not load it whole.
+A :class:`TensorSource` is the only thing a family reader sees of the files. It reads
+
+* a single ``.safetensors`` file;
+* sharded safetensors (or sharded torch files) through their JSON index, whose
+  ``weight_map`` names the shard that holds each tensor;
+* an HDF5 file in the layout of docs/families.md: one dataset per tensor, the tensor's
+  name being the dataset's path with ``/`` read as ``.`` (``h/0/attn/c_attn/weight`` and a
+  root dataset named ``h.0.attn.c_attn.weight`` are the same tensor); the config is
+  ``config.json`` beside the file or, failing that, a JSON string in the root attribute
+  ``config``;
+* a PyTorch state dict (``.bin``/``.pt``/``.pth``), loaded only with
+  ``torch.load(..., weights_only=True)``: a pickle that needs more than tensors is refused
+  and no code from it runs.
+
+Tensors are read lazily, by name: safetensors and HDF5 files are memory-mapped or read
+per dataset, zip-format torch files are memory-mapped, so reading a few layers of a large
+checkpoint does not load it whole. Every tensor handed out is checked for its shape, a
+floating-point dtype and finite values, and converted to float32.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import pickle
 from pathlib import Path
 
 import torch
@@ -15,47 +32,56 @@ import torch
 from ..errors import CompositionError
 
 CONFIG_NAME = "config.json"
+SAFETENSORS = (".safetensors",)
+TORCH = (".bin", ".pt", ".pth")
+HDF5 = (".h5", ".hdf5")
+INDEX = ".index.json"
 
 
 class TensorSource:
-    """Lazy, named access to the tensors of one checkpoint file."""
+    """Lazy, named access to the tensors of one checkpoint: a file, or shards behind an index."""
 
-    def __init__(self, path: Path):
+    def __init__(self, path: str | os.PathLike):
         self.path = Path(path)
-        self._handle = _open_safetensors(self.path)
-        self._names = list(self._handle.keys())
+        self._where: dict[str, _File] = {}
+        if self.path.name.endswith(INDEX):
+            self._open_index(self.path)
+        else:
+            f = _open_file(self.path)
+            self._where = {name: f for name in f.names()}
         self._taken: set[str] = set()
 
     def names(self) -> list[str]:
-        return list(self._names)
+        return list(self._where)
 
     def has(self, name: str) -> bool:
-        return name in self._names
+        return name in self._where
 
     def shape(self, name: str) -> tuple[int, ...]:
         self._need(name)
-        return tuple(self._handle.get_slice(name).get_shape())
+        return self._where[name].shape(name)
+
+    def file_of(self, name: str) -> Path:
+        self._need(name)
+        return self._where[name].path
 
     def get(self, name: str, shape: tuple[int, ...] | None = None) -> torch.Tensor:
-        """The tensor ``name`` as float32, checked against ``shape`` if given."""
+        """The tensor ``name`` as float32, checked against ``shape`` if given. # -> shape"""
         self._need(name)
-        try:
-            t = self._handle.get_tensor(name)
-        except Exception as exc:  # noqa: BLE001 - the library's errors vary by fault
+        f = self._where[name]
+        if shape is not None and f.shape(name) != tuple(shape):
             raise CompositionError(
-                f"tensor {name} in {self.path} could not be read ({_first_line(exc)}); "
-                "the file may be truncated or corrupt."
-            ) from None
-        if shape is not None and tuple(t.shape) != tuple(shape):
-            raise CompositionError(
-                f"tensor {name} in {self.path} has shape {tuple(t.shape)}, but the config "
+                f"tensor {name} in {f.path} has shape {f.shape(name)}, but the config "
                 f"implies {tuple(shape)}."
             )
+        t = f.get(name)
+        if tuple(t.shape) != f.shape(name):
+            raise CompositionError(f"tensor {name} in {f.path} does not hold the shape its header states.")
         if not t.is_floating_point():
-            raise CompositionError(f"tensor {name} in {self.path} is {t.dtype}, not a float type.")
+            raise CompositionError(f"tensor {name} in {f.path} is {t.dtype}, not a floating-point type.")
         t = t.to(torch.float32)
         if not torch.isfinite(t).all():
-            raise CompositionError(f"tensor {name} in {self.path} contains NaN or Inf values.")
+            raise CompositionError(f"tensor {name} in {f.path} contains NaN or Inf values; it cannot be analysed.")
         self._taken.add(name)
         return t
 
@@ -63,55 +89,246 @@ class TensorSource:
         return sorted(self._taken)
 
     def ignored(self) -> list[str]:
-        return sorted(set(self._names) - self._taken)
+        return sorted(set(self._where) - self._taken)
 
     def _need(self, name: str) -> None:
-        if name not in self._names:
+        if name not in self._where:
             raise CompositionError(f"tensor {name} is missing from {self.path}.")
 
+    def _open_index(self, index: Path) -> None:
+        try:
+            data = json.loads(index.read_text())
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise CompositionError(f"the shard index {index} is not valid JSON ({_first_line(exc)}).") from None
+        wmap = data.get("weight_map") if isinstance(data, dict) else None
+        if not isinstance(wmap, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in wmap.items()):
+            raise CompositionError(f"the shard index {index} has no weight_map of tensor names to shard files.")
+        shards: dict[str, _File] = {}
+        for shard in sorted(set(wmap.values())):
+            p = index.parent / shard
+            if Path(shard).name != shard:
+                raise CompositionError(f"the shard index {index} names {shard!r}, which is not a file beside it.")
+            if not p.is_file():
+                raise CompositionError(f"shard {shard} named by {index} does not exist.")
+            shards[shard] = _open_file(p)
+        for name, shard in wmap.items():
+            if not shards[shard].has(name):
+                raise CompositionError(f"the shard index {index} places tensor {name} in {shard}, which does not hold it.")
+            self._where[name] = shards[shard]
 
-def locate(checkpoint: str | os.PathLike) -> tuple[Path, dict]:
-    """Find the weights file and read ``config.json`` for a checkpoint path.
 
-    ``checkpoint`` is a directory holding ``config.json`` and one ``*.safetensors`` file,
-    or a ``.safetensors`` file with ``config.json`` beside it.
+def locate(checkpoint: str | os.PathLike, need_config: bool = True) -> tuple[Path, dict]:
+    """Find the weights (a file or a shard index) and read the config for a checkpoint path.
+
+    ``checkpoint`` is a directory holding ``config.json`` and the weights, or a weights
+    file (or shard index) with ``config.json`` beside it. In a directory the first kind
+    found wins: a safetensors index, one safetensors file, a torch index, one torch file,
+    one HDF5 file. Without ``need_config`` (a layout file gives the sizes) a missing
+    config is an empty one.
     """
     p = Path(checkpoint)
     if not p.exists():
         raise CompositionError(f"checkpoint path {p} does not exist.")
     if p.is_dir():
-        files = sorted(p.glob("*.safetensors"))
-        if not files:
-            raise CompositionError(f"directory {p} holds no .safetensors checkpoint file.")
-        if len(files) > 1:
-            names = ", ".join(f.name for f in files)
-            raise CompositionError(f"directory {p} holds several .safetensors files ({names}); name one.")
-        weights_file, config_dir = files[0], p
+        weights_file = _pick(p)
+        config_dir = p
     else:
+        if not (p.name.endswith(INDEX) or p.suffix in SAFETENSORS + TORCH + HDF5):
+            raise CompositionError(
+                f"{p} is not a checkpoint file this tool reads (.safetensors, .bin/.pt/.pth, .h5/.hdf5 "
+                "or a shard index .index.json)."
+            )
         weights_file, config_dir = p, p.parent
     config_path = config_dir / CONFIG_NAME
-    if not config_path.is_file():
+    if config_path.is_file():
+        try:
+            config = json.loads(config_path.read_text())
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise CompositionError(f"{config_path} is not valid JSON ({_first_line(exc)}).") from None
+    elif weights_file.suffix in HDF5:
+        config = _hdf5_config(weights_file, need_config)
+    elif not need_config:
+        config = {}
+    else:
         raise CompositionError(f"no {CONFIG_NAME} beside {weights_file}: the model's sizes are unknown.")
-    try:
-        config = json.loads(config_path.read_text())
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise CompositionError(f"{config_path} is not valid JSON ({_first_line(exc)}).") from None
     if not isinstance(config, dict):
-        raise CompositionError(f"{config_path} does not hold a JSON object.")
+        raise CompositionError(f"the config of {weights_file} does not hold a JSON object.")
     return weights_file, config
 
 
-def _open_safetensors(path: Path):
-    from safetensors import safe_open
+def _pick(directory: Path) -> Path:
+    """The weights of a checkpoint directory, by the preference order of :func:`locate`."""
+    kinds = [
+        ("safetensors shard index", lambda f: f.name.endswith(".safetensors" + INDEX)),
+        ("safetensors file", lambda f: f.suffix in SAFETENSORS),
+        ("torch shard index", lambda f: f.name.endswith(INDEX) and any(f.name.endswith(s + INDEX) for s in TORCH)),
+        ("torch file", lambda f: f.suffix in TORCH),
+        ("HDF5 file", lambda f: f.suffix in HDF5),
+    ]
+    files = sorted(f for f in directory.iterdir() if f.is_file())
+    for kind, test in kinds:
+        found = [f for f in files if test(f)]
+        if len(found) == 1:
+            return found[0]
+        if len(found) > 1:
+            names = ", ".join(f.name for f in found)
+            raise CompositionError(f"directory {directory} holds several of one kind ({kind}: {names}); name one.")
+    raise CompositionError(
+        f"directory {directory} holds no checkpoint file (.safetensors, shard index, .bin/.pt/.pth or .h5)."
+    )
 
-    if not path.is_file():
-        raise CompositionError(f"checkpoint file {path} does not exist.")
+
+class _File:
+    """One weights file: names, header shapes, tensors by name."""
+
+    path: Path
+
+    def names(self) -> list[str]:
+        raise NotImplementedError
+
+    def has(self, name: str) -> bool:
+        return name in self._shapes
+
+    def shape(self, name: str) -> tuple[int, ...]:
+        return self._shapes[name]
+
+    def get(self, name: str) -> torch.Tensor:
+        raise NotImplementedError
+
+
+class _Safetensors(_File):
+    def __init__(self, path: Path):
+        from safetensors import safe_open
+
+        self.path = path
+        try:
+            self._handle = safe_open(str(path), framework="pt")
+            self._shapes = {n: tuple(self._handle.get_slice(n).get_shape()) for n in self._handle.keys()}
+        except Exception as exc:  # noqa: BLE001 - the library's errors vary by fault
+            raise CompositionError(
+                f"{path} is not a readable safetensors file ({_first_line(exc)}); it may be truncated or corrupt."
+            ) from None
+
+    def names(self) -> list[str]:
+        return list(self._shapes)
+
+    def get(self, name: str) -> torch.Tensor:
+        try:
+            return self._handle.get_tensor(name)
+        except Exception as exc:  # noqa: BLE001
+            raise CompositionError(
+                f"tensor {name} in {self.path} could not be read ({_first_line(exc)}); "
+                "the file may be truncated or corrupt."
+            ) from None
+
+
+class _HDF5(_File):
+    def __init__(self, path: Path):
+        import h5py
+
+        self.path = path
+        try:
+            self._handle = h5py.File(path, "r")
+            datasets: dict[str, str] = {}
+
+            def visit(name, obj):
+                if isinstance(obj, h5py.Dataset):
+                    datasets[name.strip("/").replace("/", ".")] = name
+
+            self._handle.visititems(visit)
+            self._datasets = datasets
+            self._shapes = {n: tuple(self._handle[p].shape) for n, p in datasets.items()}
+        except CompositionError:
+            raise
+        except Exception as exc:  # noqa: BLE001
+            raise CompositionError(
+                f"{path} is not a readable HDF5 file ({_first_line(exc)}); it may be truncated or corrupt."
+            ) from None
+
+    def names(self) -> list[str]:
+        return list(self._shapes)
+
+    def get(self, name: str) -> torch.Tensor:
+        import numpy as np
+
+        ds = self._handle[self._datasets[name]]
+        if ds.dtype.kind != "f":
+            raise CompositionError(f"tensor {name} in {self.path} is {ds.dtype}, not a floating-point type.")
+        try:
+            return torch.from_numpy(np.ascontiguousarray(ds[()]))
+        except Exception as exc:  # noqa: BLE001
+            raise CompositionError(
+                f"tensor {name} in {self.path} could not be read ({_first_line(exc)}); "
+                "the file may be truncated or corrupt."
+            ) from None
+
+
+class _Torch(_File):
+    def __init__(self, path: Path):
+        self.path = path
+        state = _torch_load(path)
+        self._tensors = {k: v for k, v in state.items() if isinstance(k, str) and isinstance(v, torch.Tensor)}
+        self._shapes = {k: tuple(v.shape) for k, v in self._tensors.items()}
+
+    def names(self) -> list[str]:
+        return list(self._shapes)
+
+    def get(self, name: str) -> torch.Tensor:
+        return self._tensors[name]
+
+
+def _torch_load(path: Path) -> dict:
+    """``torch.load`` restricted to tensors and plain containers; never runs checkpoint code."""
+    import zipfile
+
+    mmap = zipfile.is_zipfile(path)  # the zip format can be memory-mapped; the legacy one cannot
     try:
-        return safe_open(str(path), framework="pt")
+        state = torch.load(path, map_location="cpu", weights_only=True, mmap=mmap)
+    except pickle.UnpicklingError as exc:
+        raise CompositionError(
+            f"{path} is a pickle that needs more than tensors to load ({_first_line(exc)[:120]}); "
+            "it was refused, because loading it could run code."
+        ) from None
     except Exception as exc:  # noqa: BLE001
         raise CompositionError(
-            f"{path} is not a readable safetensors file ({_first_line(exc)})."
+            f"{path} is not a readable PyTorch state dict ({_first_line(exc)[:160]}); it may be truncated or corrupt."
         ) from None
+    for key in ("state_dict", "model"):
+        if isinstance(state, dict) and len(state) == 1 and isinstance(state.get(key), dict):
+            state = state[key]
+    if not isinstance(state, dict):
+        raise CompositionError(f"{path} holds a {type(state).__name__}, not a state dict of named tensors.")
+    return state
+
+
+def _open_file(path: Path) -> _File:
+    if not path.is_file():
+        raise CompositionError(f"checkpoint file {path} does not exist.")
+    if path.suffix in SAFETENSORS:
+        return _Safetensors(path)
+    if path.suffix in HDF5:
+        return _HDF5(path)
+    if path.suffix in TORCH:
+        return _Torch(path)
+    raise CompositionError(f"{path} is not a checkpoint file type this tool reads.")
+
+
+def _hdf5_config(path: Path, need_config: bool = True) -> dict:
+    import h5py
+
+    try:
+        with h5py.File(path, "r") as f:
+            raw = f.attrs.get("config")
+    except Exception as exc:  # noqa: BLE001
+        raise CompositionError(f"{path} is not a readable HDF5 file ({_first_line(exc)}).") from None
+    if raw is None and not need_config:
+        return {}
+    if raw is None:
+        raise CompositionError(f"no {CONFIG_NAME} beside {path} and no 'config' attribute in it: the sizes are unknown.")
+    try:
+        return json.loads(raw.decode() if isinstance(raw, bytes) else str(raw))
+    except json.JSONDecodeError as exc:
+        raise CompositionError(f"the 'config' attribute of {path} is not valid JSON ({_first_line(exc)}).") from None
 
 
 def _first_line(exc: BaseException) -> str:

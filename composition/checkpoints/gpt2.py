@@ -11,10 +11,9 @@ import torch
 
 from ..errors import CompositionError
 from ..weights import MLP, Attention, Layer, Norm, Weights
+from ._build import ACTIVATIONS as _ACTIVATIONS
+from ._build import LazyLayers
 from .files import TensorSource
-
-_ACTIVATIONS = {"gelu_new": "gelu-tanh", "gelu_pytorch_tanh": "gelu-tanh", "gelu_fast": "gelu-tanh",
-                "gelu": "gelu", "relu": "relu", "silu": "silu", "swish": "silu"}
 
 
 def matches(config: dict) -> bool:
@@ -49,8 +48,7 @@ def read(src: TensorSource, config: dict) -> Weights:
     n_pos = src.shape(pre + "wpe.weight")[0] if src.has(pre + "wpe.weight") else None
     W_pos = get("wpe.weight", (n_pos, d)) if n_pos else None  # [P, d]
 
-    layers = []
-    for i in range(L):
+    def load_layer(i: int) -> Layer:
         p = f"h.{i}."
         qkv = get(p + "attn.c_attn.weight", (d, 3 * d))  # [d, 3d]
         qkv_b = get(p + "attn.c_attn.bias", (3 * d,))  # [3d]
@@ -65,7 +63,7 @@ def read(src: TensorSource, config: dict) -> Weights:
             b_out=get(p + "mlp.c_proj.bias", (d,)),
             activation=act,
         )
-        layers.append(Layer(norm(p + "ln_1"), attn, norm(p + "ln_2"), mlp))
+        return Layer(norm(p + "ln_1"), attn, norm(p + "ln_2"), mlp)
 
     lm_head = "lm_head.weight"
     if src.has(lm_head):
@@ -76,18 +74,21 @@ def read(src: TensorSource, config: dict) -> Weights:
     scale = None
     if not config.get("scale_attn_weights", True):
         scale = 1.0
+    notes = ()
+    if config.get("scale_attn_by_inverse_layer_idx"):
+        notes = ("the config divides layer l's scores by l + 1 as well; that per-layer scale changes "
+                 "no rank and is left out of the attention scale shown.",)
     return Weights(
         family="gpt2",
         W_E=W_E,
         W_pos=W_pos,
         W_U=W_U,
         final_norm=norm("ln_f"),
-        layers=tuple(layers),
+        layers=LazyLayers(L, load_layer),
         placement="pre",
         attn_scale=scale,
         readout=readout,
-        tensors_used=tuple(src.used()),
-        tensors_ignored=tuple(src.ignored()),
+        notes=notes,
         source=str(src.path),
         config=dict(config),
     )

@@ -1,6 +1,6 @@
 """Independent dense float64 oracle for GPT-2-layout checkpoints.
 
-Written from /work/shared/METHODS.md only (no code from the ``composition``
+Written from docs/methods.md only (no code from the ``composition``
 package), in plain NumPy float64 so that it can serve as an outside check of
 the analyzer on small vocabularies.  Clarity over speed: every matrix here is
 held whole ([V, V] included), so use it with small models only.

@@ -1,6 +1,6 @@
 """Self-checks of the dense GPT-2 oracle (tests/oracles/dense_gpt2.py) against
 references outside the project.  Each test names its source in its docstring
-(see /work/shared/CHECKS.md)."""
+(see DEVELOPERS.md, "Tests")."""
 
 from __future__ import annotations
 
