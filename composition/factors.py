@@ -150,7 +150,7 @@ def _writer_read(w: Weights, writer_layer: int, writer_head: int, responder_laye
     """``W_O^U Lin(N_lR) W^R [M^T]`` for every responder head, W one of W_K/W_V. # -> [H_R, dh, dh]"""
     _check_layers(writer_layer, responder_layer)
     W_O = w.layers[writer_layer].attn.W_O[writer_head].double()  # [dh, d]
-    lin = norm_linear_part(input_norm(w, responder_layer), w.d_model)  # [d, d]
+    lin = residual_path(w, writer_layer, responder_layer)  # [d, d]
     W = getattr(w.layers[responder_layer].attn, which).double()  # [H, d, dh]
     out = torch.einsum("ed,df,hfg->heg", W_O, lin, W)  # [H, dh, dh]
     if rotation is not None:
@@ -192,10 +192,25 @@ def value_middles(w: Weights, writer_layer: int, writer_head: int, responder_lay
     return _writer_read(w, writer_layer, writer_head, responder_layer, "W_V")
 
 
+def readout_path(w: Weights, layer: int) -> torch.Tensor:
+    """The linear part of the path from a write in ``layer`` to the logits. # -> [d, d]
+
+    Pre-norm and parallel: ``Lin(N_f)``. Post-norm: every norm after the residual adds from
+    ``layer`` on, then ``Lin(N_f)`` (the identity for encoders), as in :func:`residual_path`.
+    """
+    d = w.d_model
+    path = torch.eye(d, dtype=torch.float64)
+    if w.placement == "post":
+        for later in range(layer, w.n_layers):
+            for norm in (w.layers[later].attn_norm, w.layers[later].mlp_norm):
+                path = path @ norm_linear_part(norm, d)  # [d, d]
+    return path @ norm_linear_part(w.final_norm, d)  # [d, d]
+
+
 def responder_readouts(w: Weights, layer: int) -> torch.Tensor:
     """Value side: ``(W_O^R Lin(N_f) W_U)^T`` for every head of ``layer``. # -> [H, V, dh]"""
     W_O = w.layers[layer].attn.W_O.double()  # [H, dh, d]
-    lin = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
+    lin = readout_path(w, layer)  # [d, d]
     W_U = w.W_U.double()  # [d, V]
     return torch.einsum("hed,dv->hve", W_O @ lin, W_U)  # [H, V, dh]
 
@@ -211,12 +226,14 @@ def value_side(A_writer: torch.Tensor, middle: torch.Tensor, readout: torch.Tens
     return A_writer @ middle, readout  # [V, dh], [V, dh]
 
 
-def unembed_directions(w: Weights) -> torch.Tensor:
+def unembed_directions(w: Weights, writer_layer: int) -> torch.Tensor:
     """Each token's effective unembedding direction ``u_t``: ``Lin(N_f) W_U[:, t]``, normalised.
 
     # -> [V, d] float64, one unit row per token (a zero column of W_U gives a zero row)
+    Post-norm models: the whole path from a write in ``writer_layer`` to the logits
+    (:func:`readout_path`); pre-norm models do not depend on the layer.
     """
-    lin = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
+    lin = readout_path(w, writer_layer)  # [d, d]
     U = (lin @ w.W_U.double()).T  # [V, d]
     n = U.norm(dim=1, keepdim=True)  # [V, 1]
     return U / torch.where(n > 0, n, torch.ones_like(n))  # [V, d]
@@ -230,13 +247,14 @@ def unembed_coefficients(A_writer: torch.Tensor, W_O_writer: torch.Tensor, direc
     return (A_writer * (directions @ W_O_writer.double().T)).sum(1)  # [V]
 
 
-def unembed_queries(w: Weights, directions: torch.Tensor, layer: int,
+def unembed_queries(w: Weights, directions: torch.Tensor, writer_layer: int, layer: int,
                     rotation: torch.Tensor | None = None) -> torch.Tensor:
     """``u_t Lin(N_lR) W_Q^R [M]`` for every head of ``layer``: the query of a unit write along ``u_t``.
 
-    # directions [V, d] -> [H, V, dh]; ``rotation`` as in :func:`key_middles`, folded as ``q M``.
+    # directions [V, d] -> [H, V, dh]; ``rotation`` as in :func:`query_middles`, folded as ``q M``.
     """
-    lin = norm_linear_part(input_norm(w, layer), w.d_model)  # [d, d]
+    _check_layers(writer_layer, layer)
+    lin = residual_path(w, writer_layer, layer)  # [d, d]
     W_Q = w.layers[layer].attn.W_Q.double()  # [H, d, dh]
     out = torch.einsum("vd,hde->hve", directions @ lin, W_Q)  # [H, V, dh]
     if rotation is not None:

@@ -36,6 +36,7 @@ class PairStats:
     histogram: np.ndarray  # [HIST_BINS] counts of percentiles
     rows: int
     p_value: float
+    write_fraction: float = 1.0  # share of the writer's squared write in the scan's query part (METHODS §3b)
 
 
 def summarise(ranks: np.ndarray, n: int, ks=DEFAULT_K) -> PairStats:

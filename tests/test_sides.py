@@ -94,9 +94,9 @@ def _factors(m: Small, writer, responder, side, part="full", orientation="row"):
     if side == "value":
         return value_side(A, value_middles(m.w, lU, hU, lR)[hR], responder_readouts(m.w, lR)[hR], orientation)
     C, K = query_middles(m.w, lU, hU, lR)[hR], responder_keys(m.w, m.T, lR)[hR]
-    U = unembed_directions(m.w)  # [V, d]
+    U = unembed_directions(m.w, lU)  # [V, d]
     alpha = unembed_coefficients(A, m.w.layers[lU].attn.W_O[hU], U)  # [V]
-    return query_part_side(A, C, K, part, alpha, unembed_queries(m.w, U, lR)[hR], orientation)
+    return query_part_side(A, C, K, part, alpha, unembed_queries(m.w, U, lU, lR)[hR], orientation)
 
 
 def _oracle(m: Small, writer, responder, side, part="full"):
@@ -197,7 +197,7 @@ def test_write_fraction_matches_oracle_and_parts_sum_to_one(small):
         (lU, hU) = writer
         A = writer_values(small.w, small.T, lU)[hU]
         W_O = small.w.layers[lU].attn.W_O[hU]
-        alpha = unembed_coefficients(A, W_O, unembed_directions(small.w))
+        alpha = unembed_coefficients(A, W_O, unembed_directions(small.w, lU))
         got = {p: write_fraction(A, W_O, p, alpha) for p in ("full", "unembed", "rest")}
         assert got["full"] == 1.0
         for p in ("unembed", "rest"):
@@ -331,21 +331,41 @@ def test_scan_fingerprint_depends_on_side_and_part(small, tmp_path):
     assert len(fps) == 3
 
 
-def test_rotary_models_refuse_key_side_and_parts(small, tmp_path):
-    """A model with rotary positions refuses --side key and the query parts with one sentence
-    (their rotary folding is not wired in yet) instead of silently ignoring the rotation.
-    Common practice, no source"""
+@pytest.mark.parametrize("side,part", [("key", "full"), ("query", "unembed"), ("query", "rest"), ("value", "full")])
+def test_rotary_offsets_fold_into_every_side(small, tmp_path, side, part):
+    """On a model with rotary positions, a scan with --rotary-offsets folds the same averaged
+    rotation ``M`` (composition.rotary.mean_rotation, itself checked against transformers) into the
+    key side (``q M k^T`` with the written token's key) and into both query parts, so the stored
+    statistics are those of the oracle's dense matrices with ``M``; the value side has no positions
+    in it and does not change.
+
+    Reference library: scipy.stats.rankdata; Source: METHODS.md §3 (rotary folding), §3b"""
     import dataclasses
 
+    from composition.rotary import inverse_frequencies, mean_rotation
     from composition.weights import Rotary
 
     dh = CFG["n_embd"] // CFG["n_head"]
-    w = dataclasses.replace(small.w, rotary=Rotary(dh, "split-half", torch.ones(dh // 2)))
-    for side, part in (("key", "full"), ("query", "unembed")):
-        with pytest.raises(CompositionError, match="rotary"):
-            run_scan(w, tmp_path / "r.h5", ScanOptions(side=side, query_part=part, writers="0.0", responders="1.0"))
-    scan = run_scan(w, tmp_path / "v.h5", ScanOptions(side="value", writers="0.0", responders="1.0"))
-    assert scan.done[0, 0, 1, 0]
+    w = dataclasses.replace(small.w, rotary=Rotary(dh, "split-half", inverse_frequencies(dh, 10000.0)))
+    M = mean_rotation(w.rotary, dh, 0, 7).numpy()  # [dh, dh]
+    assert not np.allclose(M, np.eye(dh))
+    writer, responders = (0, 1), "2"
+    scans = {off: run_scan(w, tmp_path / f"{off}.h5", ScanOptions(side=side, query_part=part, writers="0.1",
+                                                                   responders=responders, rotary_offsets=off))
+             for off in ((0, 0), (0, 7))}
+    for hR in range(CFG["n_head"]):
+        if side == "key":
+            S = osd.dense_key_matrix(small.sd, CFG, small.T_oracle, writer, (2, hR), rotation=M)
+        elif side == "query":
+            S = osd.dense_query_part_matrix(small.sd, CFG, small.T_oracle, writer, (2, hR), part, rotation=M)
+        else:
+            S = osd.dense_value_matrix(small.sd, CFG, small.T_oracle, writer, (2, hR))
+        ref = summarise(og.midranks_rows(S), 300)
+        ix = writer + (2, hR)
+        assert scans[(0, 7)].mean_percentile[ix] == ref.mean_percentile
+        np.testing.assert_array_equal(scans[(0, 7)].top_share[ix], ref.top_share)
+    rotated, plain = (scans[o].mean_percentile[0, 1, 2] for o in ((0, 7), (0, 0)))
+    assert np.array_equal(rotated, plain) == (side == "value")
 
 
 def test_cli_side_options(small, tmp_path):
@@ -455,3 +475,67 @@ def test_demo_mediation_parts(demo_scans):
         assert scans[carrier].attrs["query_part"] == carrier
     assert scans["unembed"].write_fraction[1, 3, 2, 4] > 0.2  # the on-unembedding part is not a sliver
     assert scans["unembed"].write_fraction[1, 1, 2, 1] < 0.02  # the off-unembedding writer barely has one
+
+
+# ---------------------------------------------------------------------------
+# every supported family
+# ---------------------------------------------------------------------------
+
+FAMILY_KINDS = {  # name: (transformers kind, overrides)
+    "neox-parallel": ("neox", {}),  # parallel residual, partial rotary, untied readout
+    "llama-gqa": ("llama", {}),  # RMSNorm, grouped-query, rotary with linear scaling
+    "qwen2-bias": ("qwen2", {}),  # RMSNorm with query/key/value biases, tied readout
+    "bert-mlm": ("bert", {}),  # post-norm encoder
+}
+
+
+@pytest.fixture(scope="module")
+def families(tmp_path_factory):
+    pytest.importorskip("transformers")
+    from .oracles import hf_models as hf
+
+    out = {}
+    for name, (kind, overrides) in FAMILY_KINDS.items():
+        d = tmp_path_factory.mktemp(name)
+        hf.build(kind, d, **overrides)
+        w = load_weights(d)
+        out[name] = (d, w, token_table(w, TableOptions("attn0-mlp0")))
+    return out
+
+
+@pytest.mark.parametrize("name", list(FAMILY_KINDS))
+def test_every_side_and_part_on_every_family(families, tmp_path, name):
+    """On small random models of every family the readers support (GPT-NeoX parallel with partial
+    rotary, Llama-style grouped-query with scaled rotary, Qwen2-style with biases, BERT post-norm),
+    every side and query part equals a dense float64 matrix re-derived from METHODS (norms, linear
+    parts and the post-norm residual path in NumPy, rotary offsets folded as ``q M k^T``), with
+    every diagonal midrank exact; and a scan of each side and part runs and records it.
+
+    Reference library: scipy.stats.rankdata; transformers (the random models, read by the
+    package's readers that are checked against it); Source: METHODS.md §1, §3, §3b"""
+    from composition.rotary import offsets_rotation
+
+    d, w, T = families[name]
+    M = offsets_rotation(w, (0, 3)) if w.rotary is not None else None  # [dh, dh] or None
+    writer, responder = (0, 1), (1, 2)
+    (lU, hU), (lR, hR) = writer, responder
+    A = writer_values(w, T, lU)[hU]
+    for side, part in CASES:
+        if side == "key":
+            left, right = key_side(A, key_middles(w, lU, hU, lR, rotation=M)[hR], responder_queries(w, T, lR)[hR])
+        elif side == "value":
+            left, right = value_side(A, value_middles(w, lU, hU, lR)[hR], responder_readouts(w, lR)[hR])
+        else:
+            U = unembed_directions(w, lU)
+            alpha = unembed_coefficients(A, w.layers[lU].attn.W_O[hU], U)
+            left, right = query_part_side(A, query_middles(w, lU, hU, lR, rotation=M)[hR],
+                                          responder_keys(w, T, lR)[hR], part, alpha,
+                                          unembed_queries(w, U, lU, lR, rotation=M)[hR])
+        S = osd.canonical_matrix(w, T.numpy(), writer, responder, side, part, None if M is None else M.numpy())
+        _close((left @ right.T).numpy(), S, rtol=1e-9)
+        np.testing.assert_array_equal(diagonal_midranks(left, right).numpy(), og.midranks_rows(S))
+        scan = run_scan(d, tmp_path / f"{side}-{part}.h5",
+                        ScanOptions(side=side, query_part=part, writers="0.1", responders="1.2",
+                                    rotary_offsets=None if M is None else (0, 3)))
+        assert scan.done[0, 1, 1, 2] and scan.attrs["side"] == side and scan.attrs["query_part"] == part
+        assert scan.mean_percentile[0, 1, 1, 2] == summarise(og.midranks_rows(S), w.vocab_size).mean_percentile

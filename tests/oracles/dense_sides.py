@@ -110,15 +110,18 @@ def write_part(sd, cfg, table, writer, part):
     return out
 
 
-def dense_query_part_matrix(sd, cfg, table, writer, responder, part):
+def dense_query_part_matrix(sd, cfg, table, writer, responder, part, rotation=None):
     """METHODS §3 query side with the write replaced by a §3b part, ``S [V, V]``:
-    ``S[t, j] = o_part(t) Lin(N_lR) W_Q^R . N_lR(T[j]) W_K^R * scale``."""
+    ``S[t, j] = o_part(t) Lin(N_lR) W_Q^R . N_lR(T[j]) W_K^R * scale``; with an optional
+    ``rotation`` ``M`` the score is ``q M k^T``."""
     w = og.get_weights(sd)
     lU, lR, hR = int(writer[0]), int(responder[0]), int(responder[1])
     if not lR > lU:
         raise ValueError("responder layer must be later than writer layer")
     R = og.head_weights(w, cfg, lR, hR)
     q = write_part(sd, cfg, table, writer, part) @ _lin(w, lR) @ R["W_Q"]  # [V, dh]
+    if rotation is not None:
+        q = q @ np.asarray(rotation, dtype=np.float64)
     k = _ln(w, cfg, lR, np.asarray(table, dtype=np.float64)) @ R["W_K"]   # [V, dh]
     return (q @ k.T) * og.attn_scale(cfg, lR)
 
@@ -128,3 +131,89 @@ def write_fraction(sd, cfg, table, writer, part):
     o = writer_write(sd, cfg, table, writer)
     p = write_part(sd, cfg, table, writer, part)
     return float(np.mean(np.sum(p * p, axis=1) / np.sum(o * o, axis=1)))
+
+
+# ---------------------------------------------------------------------------
+# Any family, from canonical weights (composition.weights.Weights, read by the
+# package's checkpoint readers, which are themselves checked against
+# transformers).  Norms, linear parts and residual paths are re-derived here
+# from METHODS §1 in NumPy; only the weights come from the package.
+# ---------------------------------------------------------------------------
+
+def _np(t):
+    return None if t is None else t.detach().double().cpu().numpy()
+
+
+def _norm_full(norm, x):
+    """METHODS §1: LayerNorm (population variance) or RMSNorm, row-wise; identity passes."""
+    if norm.kind == "identity":
+        return x
+    if norm.kind == "layernorm":
+        y = x - x.mean(-1, keepdims=True)
+        y = y / np.sqrt((y * y).mean(-1, keepdims=True) + norm.eps)
+    elif norm.kind == "rmsnorm":
+        y = x / np.sqrt((x * x).mean(-1, keepdims=True) + norm.eps)
+    else:
+        raise ValueError(norm.kind)
+    if norm.weight is not None:
+        y = y * _np(norm.weight)
+    if norm.bias is not None:
+        y = y + _np(norm.bias)
+    return y
+
+
+def _norm_lin(norm, d):
+    """METHODS §1: ``Lin(N)`` = ``P diag(gamma)`` (LayerNorm), ``diag(gamma)`` (RMSNorm), I (identity)."""
+    g = np.ones(d) if norm.weight is None else _np(norm.weight)
+    if norm.kind == "identity":
+        return np.eye(d)
+    if norm.kind == "rmsnorm":
+        return np.diag(g)
+    return (np.eye(d) - np.ones((d, d)) / d) @ np.diag(g)
+
+
+def _reads(w, layer):
+    """The norm in front of a layer's attention; post-norm layers read the previous norm's output."""
+    from composition.weights import Norm
+
+    return Norm("identity", None, None) if w.placement == "post" else w.layers[layer].attn_norm
+
+
+def _path(w, start, stop):
+    """Linear part from a write in layer ``start`` to what ``stop`` reads (``stop = 'out'``: the logits).
+
+    Pre-norm/parallel: the residual is additive, only the reader's norm acts.  Post-norm
+    (``x = N(x + sublayer(x))``): every norm after the write, up to the reader."""
+    d = w.d_model
+    P = np.eye(d)
+    if w.placement == "post":
+        end = w.n_layers if stop == "out" else stop
+        for layer in range(start, end):
+            P = P @ _norm_lin(w.layers[layer].attn_norm, d) @ _norm_lin(w.layers[layer].mlp_norm, d)
+    elif stop != "out":
+        P = _norm_lin(w.layers[stop].attn_norm, d)
+    return P @ _norm_lin(w.final_norm, d) if stop == "out" else P
+
+
+def canonical_matrix(w, table, writer, responder, side, part="full", rotation=None):
+    """METHODS §3/§3b dense ``[V, V]`` matrix of any family (rows as in the package's row orientation).
+
+    ``rotation`` ``M`` ``[dh, dh]``: the score is ``q M k^T`` (query and key sides)."""
+    T = np.asarray(table, dtype=np.float64)
+    (lU, hU), (lR, hR) = writer, responder
+    U, R = w.layers[lU].attn, w.layers[lR].attn
+    o = _norm_full(_reads(w, lU), T) @ _np(U.W_V[hU]) @ _np(U.W_O[hU])       # [V, d] o_U(t)
+    M = np.eye(w.d_head) if rotation is None else np.asarray(rotation, dtype=np.float64)
+    to_R = _path(w, lU, lR)
+    if side == "value":
+        return o @ to_R @ _np(R.W_V[hR]) @ _np(R.W_O[hR]) @ _path(w, lR, "out") @ _np(w.W_U)
+    if side == "key":
+        q = _norm_full(_reads(w, lR), T) @ _np(R.W_Q[hR]) + _np(R.b_Q[hR])   # [V, dh] query tokens
+        return q @ M @ (o @ to_R @ _np(R.W_K[hR])).T
+    if part != "full":
+        G = _path(w, lU, "out") @ _np(w.W_U)                                  # [d, V]
+        u = (G / np.linalg.norm(G, axis=0, keepdims=True)).T                  # [V, d] unit rows
+        proj = np.sum(o * u, axis=1, keepdims=True) * u
+        o = proj if part == "unembed" else o - proj
+    k = _norm_full(_reads(w, lR), T) @ _np(R.W_K[hR])                        # [V, dh]
+    return (o @ to_R @ _np(R.W_Q[hR])) @ M @ k.T
