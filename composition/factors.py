@@ -122,7 +122,11 @@ def query_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.
 #   query parts o_U(t) = alpha_t u_t + rest_t,  u_t = Lin(N_f) W_U[:, t] / |.|,  alpha_t = o_U(t) . u_t
 #               unembed: left = alpha * (U Lin(N_lR) W_Q^R)       [V, dh]: rows of a fixed matrix, signed scales
 #               rest:    left = A_U C_UR - unembed left           [V, dh]: a difference of two factors
-# Nothing [V, V] is ever formed.
+# Nothing [V, V] is ever formed. Lin(N_lR) stands for residual_path (post-norm: every norm in
+# between), Lin(N_f) for readout_path; a rotary M folds as q M on queries and k M^T on the
+# key side's written-token keys, so every score is q M k^T.
+# Virtual heads (value side): Elhage et al. 2021, §"Virtual Attention Heads"; the key side's
+# induction pattern: Olsson et al. 2022, "In-context Learning and Induction Heads".
 # ---------------------------------------------------------------------------
 
 SIDES = ("query", "key", "value")
