@@ -130,20 +130,18 @@ class PreparedRight:
     """A right factor made ready for the fast pass, reusable for every left factor it meets.
 
     Built once per responder head (row orientation), it holds the exactly scaled float32
-    (and bfloat16-valued) copies, packed for the kernel, and the norms the bounds need.
+    (and bfloat16-valued) copies, packed for the kernel or as torch tensors, and the norms
+    the bounds need.
     """
 
     exact: torch.Tensor  # [V, r] float64, as given
     precision: str
     device: torch.device
-    shift: int  # right is scaled by 2^-shift
-    Y: float  # max_j |y_j|
-    r32: np.ndarray | torch.Tensor  # [V, r] float32
-    rb: np.ndarray | torch.Tensor | None  # [V, r] float32 holding bfloat16 values
+    Y: float  # max_j |y_j| of the scaled rows
     D: float  # max_j |bf16(y_j) - y_j|
     K: float  # max_j |bf16(y_j)|
-    packed32: np.ndarray | None  # [np, r, NR] for the kernel
-    packedb: np.ndarray | None  # [np, r, NR]
+    y32: np.ndarray | torch.Tensor  # kernel: [np, r, NR] packed; torch: [V, r]; float32
+    yb: np.ndarray | torch.Tensor | None  # the same layout, bfloat16 values in float32
 
     @property
     def V(self) -> int:
@@ -153,10 +151,19 @@ class PreparedRight:
     def r(self) -> int:
         return self.exact.shape[1]
 
+    @property
+    def packed(self) -> bool:
+        return isinstance(self.y32, np.ndarray)
+
+    def rows_of(self, which: np.ndarray | torch.Tensor, idx: np.ndarray) -> np.ndarray:
+        """Rows ``idx`` of ``y32`` or ``yb`` as a [len(idx), r] float32 array."""
+        if self.packed:
+            return np.ascontiguousarray(which[idx // _kernel.NR, :, idx % _kernel.NR])
+        return which[torch.from_numpy(idx).to(which.device)].cpu().numpy()
+
     def nbytes(self) -> int:
-        arrays = [self.r32, self.rb, self.packed32, self.packedb]
-        return sum(int(a.nbytes) if isinstance(a, np.ndarray) else a.numel() * a.element_size()
-                   for a in arrays if a is not None)
+        arrays = [a for a in (self.y32, self.yb) if a is not None]
+        return sum(int(a.nbytes) if isinstance(a, np.ndarray) else a.numel() * a.element_size() for a in arrays)
 
 
 def _check_finite(t: torch.Tensor, what: str) -> None:
@@ -179,22 +186,19 @@ def prepare_right(right: torch.Tensor, precision: str = "fp32", device: str = "c
     y = torch.ldexp(right, torch.tensor(-shift, dtype=torch.float64))  # [V, r] exact scaling
     Y = float(y.norm(dim=1).max()) * _SAFE if V else 0.0
     y32 = y.float()  # [V, r]
-    yb = D = K = None
+    yb, D, K = None, 0.0, 0.0
     if precision == "bf16-checked":
         yb = y.to(torch.bfloat16).float()  # [V, r] bfloat16 values
         D = float((yb.double() - y).norm(dim=1).max()) * _SAFE
         K = float(yb.double().norm(dim=1).max()) * _SAFE
-    use_kernel = _use_kernel(engine, dev)
-    if use_kernel:
-        r32 = y32.numpy()
-        rb = None if yb is None else yb.numpy()
-        packed32 = _kernel.pack(r32)
-        packedb = None if rb is None else _kernel.pack(rb)
+    del y
+    if _use_kernel(engine, dev):
+        y32 = _kernel.pack(y32.numpy())
+        yb = None if yb is None else _kernel.pack(yb.numpy())
     else:
-        r32 = y32.to(dev)
-        rb = None if yb is None else yb.to(dev)
-        packed32 = packedb = None
-    return PreparedRight(right, precision, dev, shift, Y, r32, rb, D or 0.0, K or 0.0, packed32, packedb)
+        y32 = y32.to(dev)
+        yb = None if yb is None else yb.to(dev)
+    return PreparedRight(right, precision, dev, Y, D, K, y32, yb)
 
 
 def _use_kernel(engine: str, dev: torch.device) -> bool:
@@ -232,7 +236,7 @@ def midranks_batch(lefts, rights, rows=None, block_rows: int = 256, precision: s
                 for rt in rights]
     out = []
     threads = threads or max(1, torch.get_num_threads())
-    pool = ThreadPoolExecutor(threads) if prepared and isinstance(prepared[0].packed32, np.ndarray) else None
+    pool = ThreadPoolExecutor(threads) if any(p.packed for p in prepared) else None
     try:
         for left, prep in zip(lefts, prepared):
             out.append(_midranks_one(left, prep, rows, block_rows, pool, threads))
@@ -306,8 +310,7 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows, pool, thread
     E32 = ((2 * _U32 + _U32**2) + g32 * (1 + _U32) ** 2) * xn * prep.Y * _SAFE + _ETA  # [m]
     T32 = 2 * E32 + 2 * G
     x32 = x.float()  # [m, r]
-    y32 = prep.r32 if isinstance(prep.r32, np.ndarray) else prep.r32.cpu().numpy()
-    d32 = (x32.numpy() * y32[rows]).sum(1, dtype=np.float32).astype(np.float64)  # [m] float32 diagonal
+    d32 = (x32.numpy() * prep.rows_of(prep.y32, rows)).sum(1, dtype=np.float32).astype(np.float64)  # [m]
     hi32, lo32 = _round_out(d32 + T32, True), _round_out(d32 - T32, False)
     refine = None
     if prep.precision == "bf16-checked":
@@ -316,13 +319,12 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows, pool, thread
         qn = xb.double().norm(dim=1).numpy() * _SAFE
         Eb = (dq * prep.Y + qn * prep.D + g32 * qn * prep.K) * _SAFE + _ETA  # [m]
         Tb = 2 * Eb + 2 * G
-        yb = prep.rb if isinstance(prep.rb, np.ndarray) else prep.rb.cpu().numpy()
-        db = (xb.numpy() * yb[rows]).sum(1, dtype=np.float32).astype(np.float64)
+        db = (xb.numpy() * prep.rows_of(prep.yb, rows)).sum(1, dtype=np.float32).astype(np.float64)
         p = _Pass(rows, xb.numpy(), _round_out(db + Tb, True), _round_out(db - Tb, False),
                   (np.ascontiguousarray(x32.numpy()), hi32, lo32))
     else:
         p = _Pass(rows, np.ascontiguousarray(x32.numpy()), hi32, lo32, None)
-    if isinstance(prep.packed32, np.ndarray):
+    if prep.packed:
         above, rr, cc, overflow = _kernel_pass(p, prep, pool, threads)
     else:
         above, rr, cc, overflow = _torch_pass(p, prep, block_rows)
@@ -334,7 +336,7 @@ def _kernel_pass(p: _Pass, prep: PreparedRight, pool, threads):
     m = p.rows.shape[0]
     above = np.zeros(m, np.int64)
     overflow = np.zeros(m, np.uint8)
-    first = prep.packedb if p.refine is not None else prep.packed32
+    first = prep.yb if p.refine is not None else prep.y32
     n_chunks = max(1, min(4 * threads, -(-m // 96)))
     bounds = np.linspace(0, m, n_chunks + 1).astype(np.int64)
 
@@ -346,7 +348,7 @@ def _kernel_pass(p: _Pass, prep: PreparedRight, pool, threads):
         refine = None
         if p.refine is not None:
             L32, h32, l32 = p.refine
-            refine = (L32[a:b], prep.packed32, h32[a:b], l32[a:b])
+            refine = (L32[a:b], prep.y32, h32[a:b], l32[a:b])
         ov = np.zeros(b - a, np.uint8)
         ab = np.zeros(b - a, np.int64)
         n = _kernel.count_rows(lib, np.ascontiguousarray(p.L[a:b]), first, prep.V, p.hi[a:b], p.lo[a:b], ab, rec, ov,
@@ -360,12 +362,8 @@ def _kernel_pass(p: _Pass, prep: PreparedRight, pool, threads):
     recs = list(pool.map(job, range(n_chunks)))
     # padding columns of the last panel are zero vectors: their dot is exactly 0
     n_pad = first.shape[0] * _kernel.NR - prep.V
-    if n_pad:
-        zero = np.float32(0.0)
-        if p.refine is None:
-            above -= n_pad * (zero > p.hi)
-        else:  # the kernel counts pad columns only where the first pass was sure
-            above -= n_pad * (zero > p.hi)
+    if n_pad:  # counted by the first pass only where it was sure, i.e. 0 > hi
+        above -= n_pad * (np.float32(0.0) > p.hi)
     rec = np.concatenate(recs) if recs else np.zeros((0, 2), np.int32)
     return above, rec[:, 0].astype(np.int64), rec[:, 1].astype(np.int64), overflow.astype(bool)
 
@@ -373,9 +371,8 @@ def _kernel_pass(p: _Pass, prep: PreparedRight, pool, threads):
 def _torch_pass(p: _Pass, prep: PreparedRight, block_rows):
     """Plain torch fast pass over preallocated tiles (any device)."""
     dev = prep.device
-    R = (prep.rb if p.refine is not None else prep.r32)
-    R = torch.as_tensor(R, device=dev)  # [V, r]
-    R32 = torch.as_tensor(prep.r32, device=dev)
+    R = prep.yb if p.refine is not None else prep.y32  # [V, r]
+    R32 = prep.y32
     L = torch.as_tensor(p.L, device=dev)  # [m, r]
     hi = torch.as_tensor(p.hi, device=dev)[:, None]  # [m, 1]
     lo = torch.as_tensor(p.lo, device=dev)[:, None]
