@@ -22,9 +22,10 @@ from . import __version__
 from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
-from .ranks import diagonal_midranks
+from .ranks import DEVICES, PRECISIONS, check_device, prepare_right
+from .sampling import DEFAULT_FIRST_ROWS, Sampling, evaluate_pairs
 from .scanfile import CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, empty_pairs, load_scan, write_scan
-from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
+from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels
 from .tables import TABLES, TableOptions, token_table
 from .weights import Weights
 
@@ -44,6 +45,18 @@ class ScanOptions:
     writers: str | None = None  # e.g. "1,2.3": whole layers or layer.head labels
     responders: str | None = None
     block_rows: int = 256
+    # how the ranks are computed (never changes a number: not in the fingerprint)
+    precision: str = "fp32"  # fp32 | bf16-checked
+    device: str = "cpu"  # cpu | cuda
+    engine: str = "auto"  # auto | kernel | torch
+    # which rows are evaluated (in the fingerprint when sampling)
+    rows: int | None = None  # uniform sample without replacement of this many rows
+    seed: int = 0
+    until_ci: float | None = None  # sequential looks until every share's interval is this narrow
+    first_rows: int = DEFAULT_FIRST_ROWS
+
+    def sampling(self) -> Sampling:
+        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
 
     def validate(self) -> None:
         if self.table not in TABLES:
@@ -56,6 +69,12 @@ class ScanOptions:
             raise CompositionError("--fdr must lie strictly between 0 and 1.")
         if not 0 <= self.min_effect < 0.5:
             raise CompositionError("--min-effect must lie in [0, 0.5).")
+        if self.precision not in PRECISIONS:
+            raise CompositionError(f"--precision {self.precision!r} is not one of: {', '.join(PRECISIONS)}.")
+        if self.device not in DEVICES:
+            raise CompositionError(f"--device {self.device!r} is not one of: {', '.join(DEVICES)}.")
+        check_device(self.device)
+        self.sampling().validate()
 
 
 @dataclass
@@ -101,8 +120,15 @@ def scan_pairs(w: Weights, options: ScanOptions) -> list[tuple[Head, Head]]:
 def result_options(options: ScanOptions) -> dict:
     """The options that change a scan's numbers (they enter the fingerprint)."""
     d = asdict(options)
-    for key in ("writers", "responders", "block_rows"):
+    for key in ("writers", "responders", "block_rows", "precision", "device", "engine"):
         d.pop(key)
+    if not options.sampling().sampled:  # exact scans keep the fingerprint they always had
+        for key in ("rows", "seed", "until_ci", "first_rows"):
+            d.pop(key)
+    else:
+        d["row_order"] = "numpy.random.default_rng(seed).permutation(V)"
+        if options.until_ci is None:
+            d.pop("first_rows")
     d["k"] = [int(k) for k in options.k]
     d["position"] = "none" if options.position is None else str(options.position)
     d["side"] = "query"
@@ -186,21 +212,33 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
     K = factors.keys(lR)  # [H, V, dh]
     middles = query_middles(w, lU, hU, lR)  # [H, dh, dh]
     ks = tuple(int(k) for k in options.k)
-    out = {}
+    lefts, rights = [], []
     for hR in unit.responder_heads:
-        left, right = query_side(A, middles[hR], K[hR], options.orientation)
-        ranks = diagonal_midranks(left, right, block_rows=options.block_rows).numpy()
-        out[(unit.writer, (lR, hR))] = summarise(ranks, w.vocab_size, ks)
-    return out
+        left, right = query_side(A, middles[hR], K[hR], options.orientation)  # [V, dh] each
+        lefts.append(left)
+        rights.append(_prepared_keys(factors, lR, hR, options) if options.orientation == "row" else right)
+    stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
+                           options.precision, options.device, options.engine, options.block_rows)
+    return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}
+
+
+def _prepared_keys(factors: _FactorCache, layer: int, head: int, options: ScanOptions):
+    """Row orientation: the responder keys packed for the ranks kernel, kept for the layer
+    (every writer unit of that responder layer reuses them)."""
+    key = (layer, options.precision, options.device, options.engine)
+    cache = getattr(factors, "_prepared_keys", None)
+    if cache is None or cache[0] != key:
+        cache = (key, {})
+        factors._prepared_keys = cache
+    if head not in cache[1]:
+        cache[1][head] = prepare_right(factors.keys(layer)[head], options.precision, options.device, options.engine)
+    return cache[1][head]
 
 
 def _store(arrays, index, s) -> None:
-    arrays["top_share"][index] = s.top_share
-    arrays["bottom_share"][index] = s.bottom_share
-    arrays["mean_percentile"][index] = s.mean_percentile
-    arrays["histogram"][index] = s.histogram
-    arrays["rows_evaluated"][index] = s.rows
-    arrays["p_value"][index] = s.p_value
+    for name, value in s.datasets().items():
+        if name in arrays:
+            arrays[name][index] = value
     arrays["done"][index] = True
 
 
