@@ -134,7 +134,7 @@ class PreparedRight:
     the bounds need.
     """
 
-    exact: torch.Tensor  # [V, r] float64, as given
+    exact: np.ndarray  # [V, r] float64, as given
     precision: str
     device: torch.device
     Y: float  # max_j |y_j| of the scaled rows
@@ -159,15 +159,15 @@ class PreparedRight:
         """Rows ``idx`` of ``y32`` or ``yb`` as a [len(idx), r] float32 array."""
         if self.packed:
             return np.ascontiguousarray(which[idx // _kernel.NR, :, idx % _kernel.NR])
-        return which[torch.from_numpy(idx).to(which.device)].cpu().numpy()
+        return which[torch.from_numpy(idx).to(which.device)].cpu().numpy()  # torch engine
 
     def nbytes(self) -> int:
         arrays = [a for a in (self.y32, self.yb) if a is not None]
         return sum(int(a.nbytes) if isinstance(a, np.ndarray) else a.numel() * a.element_size() for a in arrays)
 
 
-def _check_finite(t: torch.Tensor, what: str) -> None:
-    if not bool(torch.isfinite(t).all()):
+def _check_finite(t: np.ndarray, what: str) -> None:
+    if not np.isfinite(t).all():
         raise CompositionError(f"the {what} factor of a token matrix has non-finite entries (inf or nan).")
 
 
@@ -177,28 +177,51 @@ def prepare_right(right: torch.Tensor, precision: str = "fp32", device: str = "c
     if precision not in PRECISIONS:
         raise CompositionError(f"--precision {precision!r} is not one of: {', '.join(PRECISIONS)}.")
     dev = check_device(device)
-    right = right.detach().to("cpu", torch.float64).contiguous()
+    right = _as_f64(right)  # [V, r]
     _check_finite(right, "right")
     V, r = right.shape
     _gamma(r, _U32)
-    norms = right.norm(dim=1).numpy()  # [V]
+    norms = _row_norms(right)  # [V]
     shift = int(_pow2_exponents(np.array([norms.max() if V else 0.0]))[0])
-    y = torch.ldexp(right, torch.tensor(-shift, dtype=torch.float64))  # [V, r] exact scaling
-    Y = float(y.norm(dim=1).max()) * _SAFE if V else 0.0
-    y32 = y.float()  # [V, r]
+    y = np.ldexp(right, -shift)  # [V, r] exact scaling
+    Y = float(_row_norms(y).max()) * _SAFE if V else 0.0
+    y32 = y.astype(np.float32)  # [V, r]
     yb, D, K = None, 0.0, 0.0
     if precision == "bf16-checked":
-        yb = y.to(torch.bfloat16).float()  # [V, r] bfloat16 values
-        D = float((yb.double() - y).norm(dim=1).max()) * _SAFE
-        K = float(yb.double().norm(dim=1).max()) * _SAFE
+        yb = _to_bf16(y32)  # [V, r] bfloat16 values
+        D = float(_row_norms(yb.astype(np.float64) - y).max()) * _SAFE
+        K = float(_row_norms(yb).max()) * _SAFE
     del y
     if _use_kernel(engine, dev):
-        y32 = _kernel.pack(y32.numpy())
-        yb = None if yb is None else _kernel.pack(yb.numpy())
+        y32 = _kernel.pack(y32)
+        yb = None if yb is None else _kernel.pack(yb)
     else:
-        y32 = y32.to(dev)
-        yb = None if yb is None else yb.to(dev)
+        y32 = torch.from_numpy(y32).to(dev)
+        yb = None if yb is None else torch.from_numpy(yb).to(dev)
     return PreparedRight(right, precision, dev, Y, D, K, y32, yb)
+
+
+def _as_f64(t) -> np.ndarray:
+    """A CPU float64 C-contiguous NumPy view or copy. # [V, r]"""
+    if isinstance(t, torch.Tensor):
+        t = t.detach().to("cpu", torch.float64).numpy()
+    return np.ascontiguousarray(t, dtype=np.float64)
+
+
+def _row_norms(a: np.ndarray) -> np.ndarray:
+    """Euclidean row norms in float64. # [n, r] -> [n]"""
+    a = a.astype(np.float64, copy=False)
+    return np.sqrt(np.einsum("ij,ij->i", a, a))
+
+
+def _to_bf16(a32: np.ndarray) -> np.ndarray:
+    """Round float32 values to bfloat16 (nearest, ties to even), kept as float32. # [n, r]
+
+    (The bounds use the rounding errors actually made, so the rounding mode only has to be
+    applied consistently, not assumed.)"""
+    bits = np.ascontiguousarray(a32, dtype=np.float32).view(np.uint32)
+    rounded = (bits + np.uint32(0x7FFF) + ((bits >> np.uint32(16)) & np.uint32(1))) & np.uint32(0xFFFF0000)
+    return rounded.view(np.float32)
 
 
 def _use_kernel(engine: str, dev: torch.device) -> bool:
@@ -229,17 +252,21 @@ def midranks_batch(lefts, rights, rows=None, block_rows: int = 256, precision: s
     """Diagonal midranks of several factor pairs at once (e.g. one writer against every
     responder head of a layer); the kernel's threads share the work of all pairs.
 
-    # lefts: list of [V, r] float64; rights: list of [V, r] float64 or PreparedRight;
-    # rows [m] int64 (the same rows for every pair) -> list of [m] float64
+    # lefts: list of [V, r] float64 (or callables returning one, built when needed);
+    # rights: the same, or PreparedRight; rows [m] int64 (the same rows for every pair)
+    # -> list of [m] float64
     """
-    prepared = [rt if isinstance(rt, PreparedRight) else prepare_right(rt, precision, device, engine)
-                for rt in rights]
-    out = []
+    dev = check_device(device)
     threads = threads or max(1, torch.get_num_threads())
-    pool = ThreadPoolExecutor(threads) if any(p.packed for p in prepared) else None
+    pool = ThreadPoolExecutor(threads) if _use_kernel(engine, dev) else None
+    out = []
     try:
-        for left, prep in zip(lefts, prepared):
-            out.append(_midranks_one(left, prep, rows, block_rows, pool, threads))
+        for left, right in zip(lefts, rights):
+            if callable(right) and not isinstance(right, PreparedRight):
+                right = right()
+            if not isinstance(right, PreparedRight):
+                right = prepare_right(right, precision, device, engine)
+            out.append(_midranks_one(left, right, rows, block_rows, pool if right.packed else None, threads))
     finally:
         if pool is not None:
             pool.shutdown()
@@ -258,7 +285,9 @@ class _Pass:
 
 
 def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) -> torch.Tensor:
-    left = left.detach().to("cpu", torch.float64).contiguous()  # [V, r]
+    if callable(left):
+        left = left()
+    left = _as_f64(left)  # [V, r]
     if left.shape != prep.exact.shape:
         raise CompositionError(f"token-matrix factors disagree in shape: {tuple(left.shape)} vs {tuple(prep.exact.shape)}.")
     V, r = left.shape
@@ -268,29 +297,30 @@ def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) ->
     ranks = np.zeros(rows.shape[0], np.float64)
     if rows.size == 0:
         return torch.from_numpy(ranks)
-    lrows = left[torch.from_numpy(rows)]  # [m, r]
+    lrows = left[rows]  # [m, r]
     _check_finite(lrows, "left")
-    lnorm = lrows.norm(dim=1).numpy()  # [m]
+    lnorm = _row_norms(lrows)  # [m]
     zero = lnorm == 0
     ranks[zero] = 0.5 * (V - 1)  # a zero row ties everywhere
     live = np.nonzero(~zero)[0]
     if live.size == 0:
         return torch.from_numpy(ranks)
-    p, above, rec_rows, rec_cols, overflow = _fast_pass(lrows[torch.from_numpy(live)], lnorm[live], rows[live],
+    if prep.packed and pool is None:
+        pool = ThreadPoolExecutor(threads)
+    p, above, rec_rows, rec_cols, overflow = _fast_pass(lrows[live], lnorm[live], rows[live],
                                                         prep, block_rows, pool, threads)
     result = above.astype(np.float64)
     # float64 decisions for the band records; the self entry is excluded by index
     keep = (rec_cols != p.rows[rec_rows]) & ~overflow[rec_rows]
     rec_rows, rec_cols = rec_rows[keep], rec_cols[keep]
     if rec_rows.size:
-        diag = exact_dot(left[torch.from_numpy(p.rows)], prep.exact[torch.from_numpy(p.rows)])  # [m']
+        diag = exact_dot(left[p.rows], prep.exact[p.rows])  # [m']
         for s in range(0, rec_rows.size, _EXACT_CHUNK):
-            rr = torch.from_numpy(rec_rows[s:s + _EXACT_CHUNK])
-            cc = torch.from_numpy(rec_cols[s:s + _EXACT_CHUNK])
-            v = exact_dot(left[torch.from_numpy(p.rows)[rr]], prep.exact[cc])  # [M]
+            rr = rec_rows[s:s + _EXACT_CHUNK]
+            v = exact_dot(left[p.rows[rr]], prep.exact[rec_cols[s:s + _EXACT_CHUNK]])  # [M]
             d = diag[rr]
-            contrib = (v > d).double() + 0.5 * (v == d).double()
-            result += np.bincount(rr.numpy(), weights=contrib.numpy(), minlength=result.size)
+            contrib = (v > d) + 0.5 * (v == d)
+            result += np.bincount(rr, weights=contrib, minlength=result.size)
     bad = np.nonzero(overflow)[0]
     if bad.size:
         result[bad] = _exact_rows(left, prep.exact, p.rows[bad])
@@ -303,27 +333,26 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows, pool, thread
     records (row position, column) and the rows whose records overflowed."""
     m, r = lrows.shape
     e = _pow2_exponents(lnorm)  # [m]
-    x = torch.ldexp(lrows, torch.from_numpy(-e)[:, None].double())  # [m, r] exact scaling
-    xn = x.norm(dim=1).numpy() * _SAFE  # [m] |x_t|
+    x = np.ldexp(lrows, -e[:, None])  # [m, r] exact scaling
+    xn = _row_norms(x) * _SAFE  # [m] |x_t|
     g32 = _gamma(r, _U32)
     G = _gamma(r, _U64) * xn * prep.Y + _ETA  # [m]
     E32 = ((2 * _U32 + _U32**2) + g32 * (1 + _U32) ** 2) * xn * prep.Y * _SAFE + _ETA  # [m]
     T32 = 2 * E32 + 2 * G
-    x32 = x.float()  # [m, r]
-    d32 = (x32.numpy() * prep.rows_of(prep.y32, rows)).sum(1, dtype=np.float32).astype(np.float64)  # [m]
+    x32 = x.astype(np.float32)  # [m, r]
+    d32 = (x32 * prep.rows_of(prep.y32, rows)).sum(1, dtype=np.float32).astype(np.float64)  # [m]
     hi32, lo32 = _round_out(d32 + T32, True), _round_out(d32 - T32, False)
     refine = None
     if prep.precision == "bf16-checked":
-        xb = x.to(torch.bfloat16).float()  # [m, r]
-        dq = (xb.double() - x).norm(dim=1).numpy() * _SAFE
-        qn = xb.double().norm(dim=1).numpy() * _SAFE
+        xb = _to_bf16(x32)  # [m, r]
+        dq = _row_norms(xb.astype(np.float64) - x) * _SAFE
+        qn = _row_norms(xb) * _SAFE
         Eb = (dq * prep.Y + qn * prep.D + g32 * qn * prep.K) * _SAFE + _ETA  # [m]
         Tb = 2 * Eb + 2 * G
-        db = (xb.numpy() * prep.rows_of(prep.yb, rows)).sum(1, dtype=np.float32).astype(np.float64)
-        p = _Pass(rows, xb.numpy(), _round_out(db + Tb, True), _round_out(db - Tb, False),
-                  (np.ascontiguousarray(x32.numpy()), hi32, lo32))
+        db = (xb * prep.rows_of(prep.yb, rows)).sum(1, dtype=np.float32).astype(np.float64)
+        p = _Pass(rows, xb, _round_out(db + Tb, True), _round_out(db - Tb, False), (x32, hi32, lo32))
     else:
-        p = _Pass(rows, np.ascontiguousarray(x32.numpy()), hi32, lo32, None)
+        p = _Pass(rows, x32, hi32, lo32, None)
     if prep.packed:
         above, rr, cc, overflow = _kernel_pass(p, prep, pool, threads)
     else:
@@ -419,7 +448,7 @@ def _torch_pass(p: _Pass, prep: PreparedRight, block_rows):
     return above.cpu().numpy(), rr, cc, np.zeros(m, bool)
 
 
-def _exact_rows(left: torch.Tensor, right: torch.Tensor, rows: np.ndarray) -> np.ndarray:
+def _exact_rows(left: np.ndarray, right: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """Midranks of whole rows in float64 (rows whose band did not fit the record buffer).
 
     A float64 product ``left[t] @ right.T`` in any order is within ``gamma_r(u') |l_t| R``
@@ -428,34 +457,37 @@ def _exact_rows(left: torch.Tensor, right: torch.Tensor, rows: np.ndarray) -> np
     are compared with ``exact_dot``. # left, right [V, r] float64, rows [m] -> [m]
     """
     V, r = right.shape
-    rmax = float(right.norm(dim=1).max())
+    rmax = float(_row_norms(right).max())
     out = np.zeros(rows.shape[0], np.float64)
     for s in range(0, rows.shape[0], 64):
-        idx = torch.from_numpy(rows[s:s + 64])  # [c]
+        idx = rows[s:s + 64]  # [c]
         Lc = left[idx]  # [c, r]
         S = Lc @ right.T  # [c, V]
         d = exact_dot(Lc, right[idx])[:, None]  # [c, 1]
-        tol = (4 * _gamma(r, _U64) * Lc.norm(dim=1) * rmax * _SAFE + 2.0**-1000)[:, None]  # [c, 1]
-        above = (S > d + tol).sum(1).double()  # [c]
+        tol = (4 * _gamma(r, _U64) * _row_norms(Lc) * rmax * _SAFE + 2.0**-1000)[:, None]  # [c, 1]
+        above = (S > d + tol).sum(1).astype(np.float64)  # [c]
         band = (S >= d - tol) & (S <= d + tol)
-        band[torch.arange(idx.shape[0]), idx] = False
-        bi, bj = band.nonzero(as_tuple=True)
-        extra = torch.zeros(idx.shape[0], dtype=torch.float64)
+        band[np.arange(idx.shape[0]), idx] = False
+        bi, bj = np.nonzero(band)
+        extra = np.zeros(idx.shape[0], np.float64)
         for a in range(0, bi.shape[0], _EXACT_CHUNK):
             i, j = bi[a:a + _EXACT_CHUNK], bj[a:a + _EXACT_CHUNK]
             v = exact_dot(Lc[i], right[j])
             dd = d[i, 0]
-            extra.index_add_(0, i, (v > dd).double() + 0.5 * (v == dd).double())
-        out[s:s + idx.shape[0]] = (above + extra).numpy()
+            extra += np.bincount(i, weights=(v > dd) + 0.5 * (v == dd), minlength=extra.size)
+        out[s:s + idx.shape[0]] = above + extra
     return out
 
 
-def exact_dot(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+def exact_dot(a, b):
     """Row-wise float64 dot products in one fixed summation order. # a, b [M, r] -> [M]
 
     Identical inputs give identical outputs wherever they sit, so duplicate tokens tie exactly.
+    Accepts NumPy arrays or torch tensors and returns the same kind.
     """
-    a, b = a.double(), b.double()
+    if isinstance(a, torch.Tensor):
+        return torch.from_numpy(exact_dot(_as_f64(a), _as_f64(b)))
+    a, b = np.asarray(a, np.float64), np.asarray(b, np.float64)
     acc = a[:, 0] * b[:, 0]
     for i in range(1, a.shape[1]):
         acc += a[:, i] * b[:, i]

@@ -24,7 +24,7 @@ import numpy as np
 
 from .errors import CompositionError
 from .ranks import midranks_batch
-from .stats import PairStats, summarise
+from .stats import PairStats, summarise_many
 
 DEFAULT_FIRST_ROWS = 256
 ALPHA = 0.05
@@ -88,7 +88,8 @@ def evaluate_pairs(lefts, rights, V: int, ks, sampling: Sampling, min_effect: fl
         still = []
         for i, r in zip(active, got):
             ranks[i] = np.concatenate([ranks[i], r.numpy()])
-            st = summarise(ranks[i], V, ks, population=V, alpha=ALPHA, looks=J)
+        stats = summarise_many([ranks[i] for i in active], V, ks, population=V, alpha=ALPHA, looks=J)
+        for i, st in zip(active, stats):
             result[i] = st
             if sampling.until_ci is not None and n < looks[-1] and not _finished(st, sampling.until_ci, min_effect):
                 still.append(i)

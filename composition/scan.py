@@ -212,11 +212,15 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
     K = factors.keys(lR)  # [H, V, dh]
     middles = query_middles(w, lU, hU, lR)  # [H, dh, dh]
     ks = tuple(int(k) for k in options.k)
-    lefts, rights = [], []
+    lefts, rights = [], []  # built when the ranks kernel reaches them, one pair at a time
     for hR in unit.responder_heads:
-        left, right = query_side(A, middles[hR], K[hR], options.orientation)  # [V, dh] each
-        lefts.append(left)
-        rights.append(_prepared_keys(factors, lR, hR, options) if options.orientation == "row" else right)
+        side = lambda h=hR: query_side(A, middles[h], K[h], options.orientation)  # noqa: E731  [V, dh] x 2
+        if options.orientation == "row":
+            lefts.append(lambda s=side: s()[0])
+            rights.append(_prepared_keys(factors, lR, hR, options))
+        else:
+            lefts.append(lambda s=side: s()[0])
+            rights.append(lambda s=side: s()[1])
     stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
                            options.precision, options.device, options.engine, options.block_rows)
     return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}

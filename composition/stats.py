@@ -76,35 +76,53 @@ def summarise(ranks: np.ndarray, n: int, ks=DEFAULT_K, population: int | None = 
     and the p-value is multiplied by ``looks`` (Bonferroni), so stopping at any look keeps
     them valid.
     """
-    ranks = np.asarray(ranks, dtype=np.float64)
-    m = ranks.shape[0]
+    return summarise_many([ranks], n, ks, population, alpha, looks)[0]
+
+
+def summarise_many(ranks_list, n: int, ks=DEFAULT_K, population: int | None = None, alpha: float = 0.05,
+                   looks: int = 1) -> list[PairStats]:
+    """:func:`summarise` for several pairs at once (one interval search for all of them)."""
     N = n if population is None else int(population)
     ks = np.asarray(ks)
-    top_count = (ranks[:, None] < ks[None, :]).sum(0)  # [nk]
-    bottom_count = (ranks[:, None] > (n - 1 - ks)[None, :]).sum(0)  # [nk]
-    pct = 1.0 - ranks / (n - 1)  # [m]
-    hist, _ = np.histogram(pct, bins=HIST_BINS, range=(0.0, 1.0))
-    mean = float(pct.mean())
-    a = alpha / looks
-    lo, hi = share_intervals(np.concatenate([top_count, bottom_count]), m, N, a)
-    eps = mean_percentile_halfwidth(m, N, a)
     nk = ks.shape[0]
-    p = min(1.0, looks * mean_percentile_p_value(mean, m, n))
-    return PairStats(top_count / m, bottom_count / m, mean, hist.astype(np.int64), m, p,
-                     lo[:nk], hi[:nk], lo[nk:], hi[nk:], max(0.0, mean - eps), min(1.0, mean + eps))
+    a = alpha / looks
+    parts, counts, sizes = [], [], []
+    for ranks in ranks_list:
+        ranks = np.asarray(ranks, dtype=np.float64)
+        m = ranks.shape[0]
+        top_count = (ranks[:, None] < ks[None, :]).sum(0)  # [nk]
+        bottom_count = (ranks[:, None] > (n - 1 - ks)[None, :]).sum(0)  # [nk]
+        pct = 1.0 - ranks / (n - 1)  # [m]
+        hist, _ = np.histogram(pct, bins=HIST_BINS, range=(0.0, 1.0))
+        parts.append((m, top_count, bottom_count, float(pct.mean()), hist.astype(np.int64)))
+        counts.append(np.concatenate([top_count, bottom_count]))
+        sizes.append(np.full(2 * nk, m))
+    if not parts:
+        return []
+    lo, hi = share_intervals(np.concatenate(counts), np.concatenate(sizes), N, a)
+    out = []
+    for i, (m, top_count, bottom_count, mean, hist) in enumerate(parts):
+        eps = mean_percentile_halfwidth(m, N, a)
+        p = min(1.0, looks * mean_percentile_p_value(mean, m, n))
+        l, h = lo[2 * nk * i:2 * nk * (i + 1)], hi[2 * nk * i:2 * nk * (i + 1)]
+        out.append(PairStats(top_count / m, bottom_count / m, mean, hist, m, p, l[:nk], h[:nk], l[nk:], h[nk:],
+                             max(0.0, mean - eps), min(1.0, mean + eps)))
+    return out
 
 
-def share_intervals(counts, m: int, N: int, alpha: float = 0.05) -> tuple[np.ndarray, np.ndarray]:
+def share_intervals(counts, m, N: int, alpha: float = 0.05) -> tuple[np.ndarray, np.ndarray]:
     """Exact hypergeometric ``1 - alpha`` intervals of population shares ``K/N`` from ``counts``
-    successes among ``m`` rows drawn without replacement from ``N``. # counts [c] -> low, high [c]
+    successes among ``m`` rows drawn without replacement from ``N``.
+    # counts [c], m scalar or [c] -> low, high [c]
 
     Inverts the two one-sided tests (Clopper-Pearson style) by bisection on the integer ``K``.
     """
     x = np.asarray(counts, dtype=np.int64)
-    if m >= N:
+    m = np.broadcast_to(np.asarray(m, dtype=np.int64), x.shape)
+    if np.all(m >= N):
         share = x / N
         return share.astype(np.float64), share.astype(np.float64)
-    lowest, highest = x.copy(), x + (N - m)  # feasible population counts
+    lowest, highest = x.copy(), np.where(m >= N, x, x + (N - m))  # feasible population counts
     # K_low: smallest K with P(X >= x | K) > alpha/2 (increasing in K)
     lo_a, lo_b = lowest.copy(), highest.copy()
     while True:
