@@ -58,12 +58,27 @@ static void put(sink_t *s, int64_t row, int64_t col) {
 static void band(sink_t *s, const refine_t *f, int64_t row, int64_t p, int64_t col0, int bm, int64_t V) {
   if (f) {  /* recompute the 16 columns from the precise factors, decide what they can */
     const float *a = f->L + row * f->r, *b = f->P + p * f->r * NR;
-    __m256 x0 = _mm256_setzero_ps(), x1 = _mm256_setzero_ps();
-    for (int64_t k = 0; k < f->r; k++) {
+    __m256 x0 = _mm256_setzero_ps(), x1 = x0, y0 = x0, y1 = x0, z0 = x0, z1 = x0, w0 = x0, w1 = x0;
+    int64_t k = 0;
+    for (; k + 4 <= f->r; k += 4) {  /* four independent chains hide the FMA latency */
+      __m256 a0 = _mm256_broadcast_ss(a + k), a1 = _mm256_broadcast_ss(a + k + 1);
+      __m256 a2 = _mm256_broadcast_ss(a + k + 2), a3 = _mm256_broadcast_ss(a + k + 3);
+      x0 = _mm256_fmadd_ps(a0, _mm256_loadu_ps(b + k * NR), x0);
+      x1 = _mm256_fmadd_ps(a0, _mm256_loadu_ps(b + k * NR + 8), x1);
+      y0 = _mm256_fmadd_ps(a1, _mm256_loadu_ps(b + (k + 1) * NR), y0);
+      y1 = _mm256_fmadd_ps(a1, _mm256_loadu_ps(b + (k + 1) * NR + 8), y1);
+      z0 = _mm256_fmadd_ps(a2, _mm256_loadu_ps(b + (k + 2) * NR), z0);
+      z1 = _mm256_fmadd_ps(a2, _mm256_loadu_ps(b + (k + 2) * NR + 8), z1);
+      w0 = _mm256_fmadd_ps(a3, _mm256_loadu_ps(b + (k + 3) * NR), w0);
+      w1 = _mm256_fmadd_ps(a3, _mm256_loadu_ps(b + (k + 3) * NR + 8), w1);
+    }
+    for (; k < f->r; k++) {
       __m256 ak = _mm256_broadcast_ss(a + k);
       x0 = _mm256_fmadd_ps(ak, _mm256_loadu_ps(b + k * NR), x0);
       x1 = _mm256_fmadd_ps(ak, _mm256_loadu_ps(b + k * NR + 8), x1);
     }
+    x0 = _mm256_add_ps(_mm256_add_ps(x0, y0), _mm256_add_ps(z0, w0));
+    x1 = _mm256_add_ps(_mm256_add_ps(x1, y1), _mm256_add_ps(z1, w1));
     __m256 hh = _mm256_broadcast_ss(f->hi + row), ll = _mm256_broadcast_ss(f->lo + row);
     __m256 m0 = _mm256_cmp_ps(x0, hh, _CMP_GT_OQ), m1 = _mm256_cmp_ps(x1, hh, _CMP_GT_OQ);
     int up = (_mm256_movemask_ps(m0) | (_mm256_movemask_ps(m1) << 8)) & bm;
