@@ -26,9 +26,9 @@ import torch
 
 from .checkpoints import load_weights
 from .factors import query_side, responder_keys, writer_values
-from .ranks import kernel_available, kernel_rate_entries, prepare_right
+from .ranks import RowProduct, kernel_available, kernel_rate_entries, prepare_right
 from .sampling import expected_rows
-from .stats import summarise
+from .stats import summarise_many
 from .tables import TableOptions, token_table
 from .weights import Weights
 
@@ -134,15 +134,20 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     g = torch.Generator().manual_seed(0)
     A = torch.randn(V, dh, generator=g, dtype=torch.float64)
     C = torch.randn(dh, dh, generator=g, dtype=torch.float64)
-    _, t_left = _timed(query_side, A, C, A, options.orientation)
     _, t_prep = _timed(prepare_right, A, options.precision, options.device, options.engine)
 
     sampling = options.sampling()
     rows, rows_most = expected_rows(V, sampling, options.min_effect, options.k)
     looks = sampling.schedule(V)
     looks_used = max(1, sum(1 for n in looks if n <= rows))
-    ranks_demo = np.random.default_rng(0).integers(0, V, rows).astype(np.float64)
-    _, t_summary = _timed(summarise, ranks_demo, V, tuple(options.k), V, 0.05, len(looks))
+    if options.orientation == "row":  # only the evaluated rows of the query factor are built
+        idx = np.arange(min(rows, V))
+        _, t_left = _timed(lambda: RowProduct(A, C)[idx])
+    else:
+        _, t_left = _timed(query_side, A, C, A, options.orientation)
+    # the statistics of a unit's pairs are summarised together at each look
+    demo = [np.random.default_rng(i).integers(0, V, rows).astype(np.float64) for i in range(H)]
+    _, t_unit_summary = _timed(summarise_many, demo, V, tuple(options.k), V, 0.05, len(looks))
 
     rate = kernel_rate_entries(options.precision, seconds=max(0.5, calibrate_seconds), V=V, r=dh,
                                engine=options.engine)
@@ -153,7 +158,7 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
         "table": t_table * scale,
         "factors": (t_values * value_builds + t_keys * key_builds) * scale
         + (t_prep * H * key_builds if options.orientation == "row" else t_prep * n_pairs * looks_used),
-        "per_pair": n_pairs * looks_used * (t_left + t_summary),
+        "per_pair": n_pairs * t_left + len(units) * looks_used * t_unit_summary,
         "ranks": entries / rate,
         "write": t_fp,
     }

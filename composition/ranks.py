@@ -284,11 +284,27 @@ class _Pass:
     refine: tuple | None  # (L32, hi32, lo32) for bf16-checked
 
 
+class RowProduct:
+    """A left factor ``A @ C`` of which only the indexed rows are ever computed (float64).
+
+    # A [V, dh], C [dh, r]; ``obj[idx]`` -> [len(idx), r]. Sampled scans evaluate a few rows,
+    so the query factor of those rows costs ``m dh r`` instead of ``V dh r``.
+    """
+
+    def __init__(self, A, C):
+        self.A, self.C = _as_f64(A), _as_f64(C)
+        self.shape = (self.A.shape[0], self.C.shape[1])
+
+    def __getitem__(self, idx) -> np.ndarray:
+        return self.A[idx] @ self.C
+
+
 def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) -> torch.Tensor:
     if callable(left):
         left = left()
-    left = _as_f64(left)  # [V, r]
-    if left.shape != prep.exact.shape:
+    if not isinstance(left, RowProduct):
+        left = _as_f64(left)  # [V, r]
+    if tuple(left.shape) != prep.exact.shape:
         raise CompositionError(f"token-matrix factors disagree in shape: {tuple(left.shape)} vs {tuple(prep.exact.shape)}.")
     V, r = left.shape
     rows = np.arange(V, dtype=np.int64) if rows is None else np.asarray(rows, dtype=np.int64).reshape(-1)
@@ -297,7 +313,8 @@ def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) ->
     ranks = np.zeros(rows.shape[0], np.float64)
     if rows.size == 0:
         return torch.from_numpy(ranks)
-    lrows = left[rows]  # [m, r]
+    lrows = np.ascontiguousarray(left[rows])  # [m, r]: the only rows of left ever used
+    del left
     _check_finite(lrows, "left")
     lnorm = _row_norms(lrows)  # [m]
     zero = lnorm == 0
@@ -313,17 +330,18 @@ def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) ->
     # float64 decisions for the band records; the self entry is excluded by index
     keep = (rec_cols != p.rows[rec_rows]) & ~overflow[rec_rows]
     rec_rows, rec_cols = rec_rows[keep], rec_cols[keep]
+    lv = lrows[live]  # [m', r] left rows of the pass, in its order
     if rec_rows.size:
-        diag = exact_dot(left[p.rows], prep.exact[p.rows])  # [m']
+        diag = exact_dot(lv, prep.exact[p.rows])  # [m']
         for s in range(0, rec_rows.size, _EXACT_CHUNK):
             rr = rec_rows[s:s + _EXACT_CHUNK]
-            v = exact_dot(left[p.rows[rr]], prep.exact[rec_cols[s:s + _EXACT_CHUNK]])  # [M]
+            v = exact_dot(lv[rr], prep.exact[rec_cols[s:s + _EXACT_CHUNK]])  # [M]
             d = diag[rr]
             contrib = (v > d) + 0.5 * (v == d)
             result += np.bincount(rr, weights=contrib, minlength=result.size)
     bad = np.nonzero(overflow)[0]
     if bad.size:
-        result[bad] = _exact_rows(left, prep.exact, p.rows[bad])
+        result[bad] = _exact_rows(lv[bad], prep.exact, p.rows[bad])
     ranks[live] = result
     return torch.from_numpy(ranks)
 
@@ -448,20 +466,20 @@ def _torch_pass(p: _Pass, prep: PreparedRight, block_rows):
     return above.cpu().numpy(), rr, cc, np.zeros(m, bool)
 
 
-def _exact_rows(left: np.ndarray, right: np.ndarray, rows: np.ndarray) -> np.ndarray:
+def _exact_rows(lrows: np.ndarray, right: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """Midranks of whole rows in float64 (rows whose band did not fit the record buffer).
 
     A float64 product ``left[t] @ right.T`` in any order is within ``gamma_r(u') |l_t| R``
     (``R = max_j |right_j|``) of the exact value, like ``exact_dot``; entries more than
     four times that from the diagonal are ordered as ``exact_dot`` orders them, the rest
-    are compared with ``exact_dot``. # left, right [V, r] float64, rows [m] -> [m]
+    are compared with ``exact_dot``. # lrows [m, r] (the left rows ``rows``), right [V, r] -> [m]
     """
     V, r = right.shape
     rmax = float(_row_norms(right).max())
     out = np.zeros(rows.shape[0], np.float64)
     for s in range(0, rows.shape[0], 64):
         idx = rows[s:s + 64]  # [c]
-        Lc = left[idx]  # [c, r]
+        Lc = lrows[s:s + 64]  # [c, r]
         S = Lc @ right.T  # [c, V]
         d = exact_dot(Lc, right[idx])[:, None]  # [c, 1]
         tol = (4 * _gamma(r, _U64) * _row_norms(Lc) * rmax * _SAFE + 2.0**-1000)[:, None]  # [c, 1]

@@ -22,7 +22,7 @@ from . import __version__
 from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
-from .ranks import DEVICES, PRECISIONS, check_device, prepare_right
+from .ranks import DEVICES, PRECISIONS, RowProduct, check_device, prepare_right
 from .sampling import DEFAULT_FIRST_ROWS, Sampling, evaluate_pairs
 from .scanfile import CAUTION, FORMAT_NAME, FORMAT_VERSION, Scan, empty_pairs, load_scan, write_scan
 from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels
@@ -214,11 +214,11 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
     ks = tuple(int(k) for k in options.k)
     lefts, rights = [], []  # built when the ranks kernel reaches them, one pair at a time
     for hR in unit.responder_heads:
-        side = lambda h=hR: query_side(A, middles[h], K[h], options.orientation)  # noqa: E731  [V, dh] x 2
-        if options.orientation == "row":
-            lefts.append(lambda s=side: s()[0])
+        if options.orientation == "row":  # left = A C (only the evaluated rows), right = K
+            lefts.append(RowProduct(A, middles[hR]))
             rights.append(_prepared_keys(factors, lR, hR, options))
         else:
+            side = lambda h=hR: query_side(A, middles[h], K[h], options.orientation)  # noqa: E731  [V, dh] x 2
             lefts.append(lambda s=side: s()[0])
             rights.append(lambda s=side: s()[1])
     stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
