@@ -241,3 +241,38 @@ def test_cli_plan_and_device_errors(tmp_path):
         assert res.exit_code == 2 and "--device cuda" in res.output and "Traceback" not in res.output
     res = runner.invoke(main, ["scan", str(model), "-o", str(tmp_path / "x.h5"), "--until-ci", "2"])
     assert res.exit_code == 2 and "--until-ci" in res.output
+
+
+def test_scan_ranks_equal_the_dense_oracle(tmp_path):
+    """Reference library: scipy.stats.rankdata, through the independent dense float64 oracle
+    (tests/oracles/dense_gpt2.py) of a random GPT-2-layout checkpoint: the shares of an exact
+    scan, and of a sampled scan on the rows of the documented permutation, are the oracle's."""
+    from safetensors.numpy import save_file
+
+    from tests.oracles import dense_gpt2 as og
+    from tests.oracles.test_dense_gpt2_selfcheck import SMALL_CFG, random_numpy_sd
+
+    cfg = dict(SMALL_CFG, n_layer=2)
+    sd = random_numpy_sd(cfg, seed=4)
+    save_file({k: np.ascontiguousarray(v) for k, v in sd.items()}, str(tmp_path / "model.safetensors"))
+    (tmp_path / "config.json").write_text(json.dumps(dict(cfg, model_type="gpt2")))
+    sd64 = {k: v.astype(np.float64) for k, v in sd.items()}
+    T = og.token_table(sd64, cfg)
+    V = cfg["vocab_size"]
+    order = np.random.default_rng(5).permutation(V)
+    for precision in ("fp32", "bf16-checked"):
+        exact = run_scan(tmp_path, tmp_path / f"e-{precision}.h5",
+                         ScanOptions(writers="0.1,0.2", responders="1.0,1.3", k=(1, 5), precision=precision))
+        sampled = run_scan(tmp_path, tmp_path / f"s-{precision}.h5",
+                           ScanOptions(writers="0.1,0.2", responders="1.0,1.3", k=(1, 5), precision=precision,
+                                       rows=120, seed=5))
+        for u in ((0, 1), (0, 2)):
+            for r in ((1, 0), (1, 3)):
+                ranks_all = og.midranks_rows(og.dense_token_matrix(sd64, cfg, T, u, r))
+                want = summarise(ranks_all, V, (1, 5))
+                np.testing.assert_array_equal(exact.top_share[u + r], want.top_share)
+                np.testing.assert_array_equal(exact.bottom_share[u + r], want.bottom_share)
+                assert exact.mean_percentile[u + r] == pytest.approx(want.mean_percentile, abs=1e-12)
+                got = summarise(ranks_all[order[:120]], V, (1, 5))
+                np.testing.assert_array_equal(sampled.top_share[u + r], got.top_share)
+                assert sampled.mean_percentile[u + r] == pytest.approx(got.mean_percentile, abs=1e-12)
