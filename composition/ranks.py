@@ -296,6 +296,10 @@ class RowProduct:
         self.shape = (self.A.shape[0], self.C.shape[1])
 
     def __getitem__(self, idx) -> np.ndarray:
+        idx = np.asarray(idx)
+        n = idx.shape[0]
+        if n and idx[0] + n - 1 == idx[-1] and np.array_equal(idx, np.arange(idx[0], idx[0] + n)):
+            return self.A[idx[0]:idx[0] + n] @ self.C  # a contiguous range: no gathered copy
         return self.A[idx] @ self.C
 
 
