@@ -131,11 +131,34 @@ def scan_options(f):
     return f
 
 
+def run_options(f):
+    """How ranks are computed and which rows are evaluated (scan, plan)."""
+    from .ranks import DEVICES, PRECISIONS
+
+    for opt in reversed([
+        click.option("--precision", type=click.Choice(PRECISIONS), default="fp32", show_default=True,
+                     help="Fast-pass arithmetic; both give the exact float64 midranks (bf16-checked rechecks "
+                          "a proven band)."),
+        click.option("--device", type=click.Choice(DEVICES), default="cpu", show_default=True,
+                     help="Where the fast pass runs."),
+        click.option("--rows", type=int, default=None, metavar="N",
+                     help="Evaluate a uniform sample of N rows per pair (without replacement, seeded)."),
+        click.option("--seed", type=int, default=0, show_default=True, help="Seed of the row sample."),
+        click.option("--until-ci", type=float, default=None, metavar="W",
+                     help="Sample rows in growing batches until every share's 95% interval is narrower "
+                          "than W or the pair's label is decided."),
+    ]):
+        f = opt(f)
+    return f
+
+
 def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect,
-                  family=None, layout=None, rotary_offset=None, rotary_offsets=None) -> ScanOptions:
+                  family=None, layout=None, rotary_offset=None, rotary_offsets=None, precision="fp32",
+                  device="cpu", rows=None, seed=0, until_ci=None) -> ScanOptions:
     return ScanOptions(table=table, position=_position(position), orientation=orientation, k=_ks(ks),
                        fdr=fdr, min_effect=min_effect, writers=writers, responders=responders,
-                       rotary_offsets=_offsets(rotary_offset, rotary_offsets), family=family, layout=layout)
+                       rotary_offsets=_offsets(rotary_offset, rotary_offsets), family=family, layout=layout,
+                       precision=precision, device=device, rows=rows, seed=seed, until_ci=until_ci)
 
 
 @main.command()
@@ -144,6 +167,7 @@ def _make_options(writers, responders, table, position, orientation, ks, fdr, mi
 @click.option("--overwrite", is_flag=True, help="Replace an existing scan file and start afresh.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
 @scan_options
+@run_options
 @click.option("--cluster", metavar="ADDRESS", help="Run the work units on this Dask scheduler, e.g. tcp://host:8786 (needs the cluster extra).")
 @click.option("--workers", type=click.IntRange(min=1), metavar="N", help="Run the work units on a local Dask cluster of N processes (needs the cluster extra).")
 @click.option("--worker-checkpoint", metavar="PATH", help="The checkpoint's path as the workers see it (default: CHECKPOINT's absolute path).")
@@ -201,6 +225,19 @@ def _print_findings(result) -> None:
                    f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
                    f"{result.bottom_share[ix][0]:9.3f} {result.q_value[ix]:9.1e}")
     click.echo(f"note: {CAUTION}")
+
+
+@main.command()
+@click.argument("checkpoint", type=click.Path())
+@click.option("--calibrate", type=float, default=3.0, show_default=True, metavar="SECONDS",
+              help="How long to time the ranks kernel on this machine.")
+@scan_options
+@run_options
+def plan(checkpoint, calibrate, **kw):
+    """Before a long scan: pairs, rows, entries, estimated wall time and peak memory."""
+    from .plan import plan_scan
+
+    click.echo(plan_scan(checkpoint, _make_options(**kw), calibrate_seconds=calibrate).describe())
 
 
 @main.command()

@@ -29,13 +29,14 @@ from . import __version__
 from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
-from .ranks import diagonal_midranks
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
+from .ranks import DEVICES, PRECISIONS, RowProduct, check_device, prepare_right
 from .rotary import offsets_rotation
+from .sampling import DEFAULT_FIRST_ROWS, Sampling, evaluate_pairs
 from .scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, Scan, ScanStore, ScanWriteError,
                        empty_pairs, journal_path, load_scan, read_scan_file)
-from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
+from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels
 from .tables import TABLES, TableOptions, token_table
 from .weights import Weights
 
@@ -58,6 +59,18 @@ class ScanOptions:
     rotary_offsets: tuple[int, int] | None = None  # (A, B): mean rotation over delta in [A, B]; None: 0 for rotary models
     family: str | None = None  # reader override (not a result option: the weights fingerprint covers it)
     layout: str | None = None  # layout file for an unknown family (likewise)
+    # how the ranks are computed (never changes a number: not in the fingerprint)
+    precision: str = "fp32"  # fp32 | bf16-checked
+    device: str = "cpu"  # cpu | cuda
+    engine: str = "auto"  # auto | kernel | torch
+    # which rows are evaluated (in the fingerprint when sampling)
+    rows: int | None = None  # uniform sample without replacement of this many rows
+    seed: int = 0
+    until_ci: float | None = None  # sequential looks until every share's interval is this narrow
+    first_rows: int = DEFAULT_FIRST_ROWS
+
+    def sampling(self) -> Sampling:
+        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
 
     def validate(self) -> None:
         if self.table not in TABLES:
@@ -74,6 +87,12 @@ class ScanOptions:
             a, b = self.rotary_offsets
             if not 0 <= int(a) <= int(b):
                 raise CompositionError(f"--rotary-offsets {a}:{b} must satisfy 0 <= A <= B.")
+        if self.precision not in PRECISIONS:
+            raise CompositionError(f"--precision {self.precision!r} is not one of: {', '.join(PRECISIONS)}.")
+        if self.device not in DEVICES:
+            raise CompositionError(f"--device {self.device!r} is not one of: {', '.join(DEVICES)}.")
+        check_device(self.device)
+        self.sampling().validate()
 
 
 @dataclass
@@ -119,10 +138,17 @@ def scan_pairs(w: Weights, options: ScanOptions) -> list[tuple[Head, Head]]:
 def result_options(options: ScanOptions) -> dict:
     """The options that change a scan's numbers (they enter the fingerprint)."""
     d = asdict(options)
-    for key in ("writers", "responders", "block_rows", "family", "layout"):
+    for key in ("writers", "responders", "block_rows", "family", "layout", "precision", "device", "engine"):
         d.pop(key)
     r = options.rotary_offsets
     d["rotary_offsets"] = "none" if r is None else f"{int(r[0])}:{int(r[1])}"
+    if not options.sampling().sampled:  # exact scans keep the fingerprint they always had
+        for key in ("rows", "seed", "until_ci", "first_rows"):
+            d.pop(key)
+    else:
+        d["row_order"] = "numpy.random.default_rng(seed).permutation(V)"
+        if options.until_ci is None:
+            d.pop("first_rows")
     d["k"] = [int(k) for k in options.k]
     d["position"] = "none" if options.position is None else str(options.position)
     d["side"] = "query"
@@ -428,21 +454,37 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
     K = factors.keys(lR)  # [H, V, dh]
     middles = query_middles(w, lU, hU, lR, rotation=factors.rotation)  # [H, dh, dh]
     ks = tuple(int(k) for k in options.k)
-    out = {}
+    lefts, rights = [], []  # built when the ranks kernel reaches them, one pair at a time
     for hR in unit.responder_heads:
-        left, right = query_side(A, middles[hR], K[hR], options.orientation)
-        ranks = diagonal_midranks(left, right, block_rows=options.block_rows).numpy()
-        out[(unit.writer, (lR, hR))] = summarise(ranks, w.vocab_size, ks)
-    return out
+        if options.orientation == "row":  # left = A C (only the evaluated rows), right = K
+            lefts.append(RowProduct(A, middles[hR]))
+            rights.append(_prepared_keys(factors, lR, hR, options))
+        else:
+            side = lambda h=hR: query_side(A, middles[h], K[h], options.orientation)  # noqa: E731  [V, dh] x 2
+            lefts.append(lambda s=side: s()[0])
+            rights.append(lambda s=side: s()[1])
+    stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
+                           options.precision, options.device, options.engine, options.block_rows)
+    return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}
+
+
+def _prepared_keys(factors: _FactorCache, layer: int, head: int, options: ScanOptions):
+    """Row orientation: the responder keys packed for the ranks kernel, kept for the layer
+    (every writer unit of that responder layer reuses them)."""
+    key = (layer, options.precision, options.device, options.engine)
+    cache = getattr(factors, "_prepared_keys", None)
+    if cache is None or cache[0] != key:
+        cache = (key, {})
+        factors._prepared_keys = cache
+    if head not in cache[1]:
+        cache[1][head] = prepare_right(factors.keys(layer)[head], options.precision, options.device, options.engine)
+    return cache[1][head]
 
 
 def _store(arrays, index, s) -> None:
-    arrays["top_share"][index] = s.top_share
-    arrays["bottom_share"][index] = s.bottom_share
-    arrays["mean_percentile"][index] = s.mean_percentile
-    arrays["histogram"][index] = s.histogram
-    arrays["rows_evaluated"][index] = s.rows
-    arrays["p_value"][index] = s.p_value
+    for name, value in s.datasets().items():
+        if name in arrays:
+            arrays[name][index] = value
     arrays["done"][index] = True
 
 
