@@ -211,19 +211,26 @@ def _run(checkpoint, out, options, overwrite, quiet, **execution):
     return result
 
 
+_SHOW_AT_MOST = 20
+
+
 def _print_findings(result) -> None:
     lab = result.label
     found = [tuple(int(i) for i in ix) for ix in np.argwhere((lab != 0) & (lab != LABEL_NOT_COMPUTED))]
-    ks = list(result.k)
+    found.sort(key=lambda i: -abs(result.mean_percentile[i] - 0.5))
+    k = int(result.k[0])
     click.echo(f"labelled responders (FDR {result.attrs['fdr']}, |mean percentile - 0.5| >= "
                f"{result.attrs['min_effect']}): {len(found)} of {int(result.done.sum())} pairs")
     if found:
-        click.echo(f"  {'writer':>7} {'responder':>9}  {'label':<19} {'mean pct':>8} {f'top-{ks[0]}':>7} "
-                   f"{f'bottom-{ks[0]}':>9} {'q-value':>9}")
-    for ix in sorted(found, key=lambda i: -abs(result.mean_percentile[i] - 0.5)):
-        click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {_LABEL_WORDS[int(lab[ix])]:<19} "
+        click.echo(f"  {'writer':<7} {'responder':<9}  {'label':<19} {'mean pct':>8} {f'top-{k}':>7} "
+                   f"{f'bottom-{k}':>9} {'q-value':>9}")
+    for ix in found[:_SHOW_AT_MOST]:
+        q = result.q_value[ix]
+        click.echo(f"  {f'{ix[0]}.{ix[1]}':<7} {f'{ix[2]}.{ix[3]}':<9}  {_LABEL_WORDS[int(lab[ix])]:<19} "
                    f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
-                   f"{result.bottom_share[ix][0]:9.3f} {result.q_value[ix]:9.1e}")
+                   f"{result.bottom_share[ix][0]:9.3f} {'<1e-300' if q == 0 else f'{q:.1e}':>9}")
+    if len(found) > _SHOW_AT_MOST:
+        click.echo(f"  ... and {len(found) - _SHOW_AT_MOST} more, strongest first above; all are in {result.path}")
     click.echo(f"note: {CAUTION}")
 
 
