@@ -137,12 +137,34 @@ def scan_options(f):
     return f
 
 
+def run_options(f):
+    """How ranks are computed and which rows are evaluated (scan, plan)."""
+    from .ranks import DEVICES, PRECISIONS
+
+    for opt in reversed([
+        click.option("--precision", type=click.Choice(PRECISIONS), default="fp32", show_default=True,
+                     help="Fast-pass arithmetic; both give the exact float64 midranks (bf16-checked rechecks "
+                          "a proven band)."),
+        click.option("--device", type=click.Choice(DEVICES), default="cpu", show_default=True,
+                     help="Where the fast pass runs."),
+        click.option("--rows", type=int, default=None, metavar="N",
+                     help="Evaluate a uniform sample of N rows per pair (without replacement, seeded)."),
+        click.option("--seed", type=int, default=0, show_default=True, help="Seed of the row sample."),
+        click.option("--until-ci", type=float, default=None, metavar="W",
+                     help="Sample rows in growing batches until every share's 95% interval is narrower "
+                          "than W or the pair's label is decided."),
+    ]):
+        f = opt(f)
+    return f
+
+
 def _make_options(writers, responders, table, position, orientation, ks, fdr, min_effect,
-                  family=None, layout=None, rotary_offset=None, rotary_offsets=None,
-                  side="query", query_part="full") -> ScanOptions:
+                  family=None, layout=None, rotary_offset=None, rotary_offsets=None, precision="fp32",
+                  device="cpu", rows=None, seed=0, until_ci=None, side="query", query_part="full") -> ScanOptions:
     return ScanOptions(table=table, position=_position(position), orientation=orientation, k=_ks(ks),
                        fdr=fdr, min_effect=min_effect, writers=writers, responders=responders,
                        rotary_offsets=_offsets(rotary_offset, rotary_offsets), family=family, layout=layout,
+                       precision=precision, device=device, rows=rows, seed=seed, until_ci=until_ci,
                        side=side, query_part=query_part)
 
 
@@ -152,6 +174,7 @@ def _make_options(writers, responders, table, position, orientation, ks, fdr, mi
 @click.option("--overwrite", is_flag=True, help="Replace an existing scan file and start afresh.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
 @scan_options
+@run_options
 @click.option("--cluster", metavar="ADDRESS", help="Run the work units on this Dask scheduler, e.g. tcp://host:8786 (needs the cluster extra).")
 @click.option("--workers", type=click.IntRange(min=1), metavar="N", help="Run the work units on a local Dask cluster of N processes (needs the cluster extra).")
 @click.option("--worker-checkpoint", metavar="PATH", help="The checkpoint's path as the workers see it (default: CHECKPOINT's absolute path).")
@@ -195,10 +218,14 @@ def _run(checkpoint, out, options, overwrite, quiet, **execution):
     return result
 
 
+_SHOW_AT_MOST = 20
+
+
 def _print_findings(result, note: bool = True) -> None:
     lab = result.label
     found = [tuple(int(i) for i in ix) for ix in np.argwhere((lab != 0) & (lab != LABEL_NOT_COMPUTED))]
-    ks = list(result.k)
+    found.sort(key=lambda i: -abs(result.mean_percentile[i] - 0.5))
+    k = int(result.k[0])
     side, part = result.attrs.get("side", "query"), result.attrs.get("query_part", "full")
     words = _VALUE_WORDS if side == "value" else _LABEL_WORDS
     click.echo(f"side {side}" + (f", query part {part}" if part != "full" else ""))
@@ -206,15 +233,31 @@ def _print_findings(result, note: bool = True) -> None:
                f"{result.attrs['min_effect']}): {len(found)} of {int(result.done.sum())} pairs")
     fraction = part != "full" and "write_fraction" in result.arrays  # METHODS §3b: show it beside the shares
     if found:
-        click.echo(f"  {'writer':>7} {'responder':>9}  {'label':<19} {'mean pct':>8} {f'top-{ks[0]}':>7} "
-                   f"{f'bottom-{ks[0]}':>9} {'q-value':>9}" + (f" {'write fraction':>14}" if fraction else ""))
-    for ix in sorted(found, key=lambda i: -abs(result.mean_percentile[i] - 0.5)):
-        click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {words[int(lab[ix])]:<19} "
+        click.echo(f"  {'writer':<7} {'responder':<9}  {'label':<19} {'mean pct':>8} {f'top-{k}':>7} "
+                   f"{f'bottom-{k}':>9} {'q-value':>9}" + (f" {'write fraction':>14}" if fraction else ""))
+    for ix in found[:_SHOW_AT_MOST]:
+        q = result.q_value[ix]
+        click.echo(f"  {f'{ix[0]}.{ix[1]}':<7} {f'{ix[2]}.{ix[3]}':<9}  {words[int(lab[ix])]:<19} "
                    f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
-                   f"{result.bottom_share[ix][0]:9.3f} {result.q_value[ix]:9.1e}"
+                   f"{result.bottom_share[ix][0]:9.3f} {'<1e-300' if q == 0 else f'{q:.1e}':>9}"
                    + (f" {result.write_fraction[ix]:14.3f}" if fraction else ""))
+    if len(found) > _SHOW_AT_MOST:
+        click.echo(f"  ... and {len(found) - _SHOW_AT_MOST} more, strongest first above; all are in {result.path}")
     if note:
         click.echo(f"note: {CAUTION}")
+
+
+@main.command()
+@click.argument("checkpoint", type=click.Path())
+@click.option("--calibrate", type=float, default=3.0, show_default=True, metavar="SECONDS",
+              help="How long to time the ranks kernel on this machine.")
+@scan_options
+@run_options
+def plan(checkpoint, calibrate, **kw):
+    """Before a long scan: pairs, rows, entries, estimated wall time and peak memory."""
+    from .plan import plan_scan
+
+    click.echo(plan_scan(checkpoint, _make_options(**kw), calibrate_seconds=calibrate).describe())
 
 
 @main.command()

@@ -29,16 +29,17 @@ from . import __version__
 from .checkpoints import load_weights
 from .errors import CompositionError
 from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
-from .factors import (QUERY_PARTS, SIDES, key_middles, key_side, query_part_side, responder_queries,
+from .factors import (QUERY_PARTS, SIDES, key_middles, query_part_side, responder_queries,
                       responder_readouts, unembed_coefficients, unembed_directions, unembed_queries,
-                      value_middles, value_side, write_fraction)
-from .ranks import diagonal_midranks
+                      value_middles, write_fraction)
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
+from .ranks import DEVICES, PRECISIONS, RowProduct, check_device, prepare_right
 from .rotary import offsets_rotation
+from .sampling import DEFAULT_FIRST_ROWS, Sampling, evaluate_pairs
 from .scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, Scan, ScanStore, ScanWriteError,
                        empty_pairs, journal_path, load_scan, read_scan_file)
-from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels, summarise
+from .stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels
 from .tables import TABLES, TableOptions, token_table
 from .weights import Weights
 
@@ -61,6 +62,19 @@ class ScanOptions:
     rotary_offsets: tuple[int, int] | None = None  # (A, B): mean rotation over delta in [A, B]; None: 0 for rotary models
     family: str | None = None  # reader override (not a result option: the weights fingerprint covers it)
     layout: str | None = None  # layout file for an unknown family (likewise)
+    # how the ranks are computed (never changes a number: not in the fingerprint)
+    precision: str = "fp32"  # fp32 | bf16-checked
+    device: str = "cpu"  # cpu | cuda
+    engine: str = "auto"  # auto | kernel | torch
+    # which rows are evaluated (in the fingerprint when sampling)
+    rows: int | None = None  # uniform sample without replacement of this many rows
+    seed: int = 0
+    until_ci: float | None = None  # sequential looks until every share's interval is this narrow
+    first_rows: int = DEFAULT_FIRST_ROWS
+
+    def sampling(self) -> Sampling:
+        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
+    # which path and which part of the write (METHODS §3, §3b; in the fingerprint)
     side: str = "query"  # query | key | value (METHODS §3, §3b)
     query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
 
@@ -79,6 +93,12 @@ class ScanOptions:
             a, b = self.rotary_offsets
             if not 0 <= int(a) <= int(b):
                 raise CompositionError(f"--rotary-offsets {a}:{b} must satisfy 0 <= A <= B.")
+        if self.precision not in PRECISIONS:
+            raise CompositionError(f"--precision {self.precision!r} is not one of: {', '.join(PRECISIONS)}.")
+        if self.device not in DEVICES:
+            raise CompositionError(f"--device {self.device!r} is not one of: {', '.join(DEVICES)}.")
+        check_device(self.device)
+        self.sampling().validate()
         self._validate_side()
 
     def _validate_side(self) -> None:
@@ -135,10 +155,17 @@ def scan_pairs(w: Weights, options: ScanOptions) -> list[tuple[Head, Head]]:
 def result_options(options: ScanOptions) -> dict:
     """The options that change a scan's numbers (they enter the fingerprint)."""
     d = asdict(options)
-    for key in ("writers", "responders", "block_rows", "family", "layout"):
+    for key in ("writers", "responders", "block_rows", "family", "layout", "precision", "device", "engine"):
         d.pop(key)
     r = options.rotary_offsets
     d["rotary_offsets"] = "none" if r is None else f"{int(r[0])}:{int(r[1])}"
+    if not options.sampling().sampled:  # exact scans keep the fingerprint they always had
+        for key in ("rows", "seed", "until_ci", "first_rows"):
+            d.pop(key)
+    else:
+        d["row_order"] = "numpy.random.default_rng(seed).permutation(V)"
+        if options.until_ci is None:
+            d.pop("first_rows")
     d["k"] = [int(k) for k in options.k]
     d["position"] = "none" if options.position is None else str(options.position)
     if options.query_part == "full":  # the default keeps the options (and fingerprint) of scans made before it
@@ -480,44 +507,89 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
     w = factors.w
     (lU, hU), lR = unit.writer, unit.responder_layer
     A = factors.values(lU)[hU]  # [V, dh]
-    pair_factors = _side_factors(factors, unit, options, A)  # hR -> (left [V, dh], right [V, dh])
+    if options.side != "query" or options.query_part != "full":  # METHODS §3b: other factors, same kernel
+        return _side_unit(factors, unit, options, A)
+    K = factors.keys(lR)  # [H, V, dh]
+    middles = query_middles(w, lU, hU, lR, rotation=factors.rotation)  # [H, dh, dh]
     ks = tuple(int(k) for k in options.k)
-    out = {}
+    lefts, rights = [], []  # built when the ranks kernel reaches them, one pair at a time
     for hR in unit.responder_heads:
-        left, right = pair_factors(hR)
-        ranks = diagonal_midranks(left, right, block_rows=options.block_rows).numpy()
-        stats = summarise(ranks, w.vocab_size, ks)
-        out[(unit.writer, (lR, hR))] = replace(stats, write_fraction=factors.write_fraction(unit.writer, options.query_part))
-    return out
+        if options.orientation == "row":  # left = A C (only the evaluated rows), right = K
+            lefts.append(RowProduct(A, middles[hR]))
+            rights.append(_prepared_keys(factors, lR, hR, options))
+        else:
+            side = lambda h=hR: query_side(A, middles[h], K[h], options.orientation)  # noqa: E731  [V, dh] x 2
+            lefts.append(lambda s=side: s()[0])
+            rights.append(lambda s=side: s()[1])
+    stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
+                           options.precision, options.device, options.engine, options.block_rows)
+    return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}
 
 
-def _side_factors(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A):
-    """The factor pair of each responder head for the scan's side and query part (METHODS §3, §3b)."""
+def _prepared_keys(factors: _FactorCache, layer: int, head: int, options: ScanOptions):
+    """Row orientation: the responder keys packed for the ranks kernel, kept for the layer
+    (every writer unit of that responder layer reuses them)."""
+    key = (layer, options.precision, options.device, options.engine)
+    cache = getattr(factors, "_prepared_keys", None)
+    if cache is None or cache[0] != key:
+        cache = (key, {})
+        factors._prepared_keys = cache
+    if head not in cache[1]:
+        cache[1][head] = prepare_right(factors.keys(layer)[head], options.precision, options.device, options.engine)
+    return cache[1][head]
+
+
+def _side_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A) -> dict:
+    """``compute_unit`` for the key and value sides and the query parts: the same kernel on the
+    factors of METHODS §3b, each pair's write fraction stored beside its statistics."""
+    w = factors.w
+    lefts, rights = zip(*[_side_inputs(factors, unit, options, A, hR) for hR in unit.responder_heads])
+    stats = evaluate_pairs(list(lefts), list(rights), w.vocab_size, tuple(int(k) for k in options.k),
+                           options.sampling(), options.min_effect, options.precision, options.device,
+                           options.engine, options.block_rows)
+    fraction = factors.write_fraction(unit.writer, options.query_part)
+    return {(unit.writer, (unit.responder_layer, hR)): replace(st, write_fraction=fraction)
+            for hR, st in zip(unit.responder_heads, stats)}
+
+
+def _side_inputs(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A, hR: int):
+    """The kernel's (left, right) of one pair: a per-layer factor is packed once per layer, a per-pair
+    one is built when the kernel reaches it. # A [V, dh]; left, right [V, dh] (or lazy)"""
     w = factors.w
     (lU, hU), lR = unit.writer, unit.responder_layer
-    side, part, orientation = options.side, options.query_part, options.orientation
-    M = factors.rotation  # [dh, dh] or None: folded as q M k^T on the query and key sides
-    if side == "key":
-        middles, Q = key_middles(w, lU, hU, lR, rotation=M), factors.queries(lR)  # [H, dh, dh], [H, V, dh]
-        return lambda hR: key_side(A, middles[hR], Q[hR], orientation)
-    if side == "value":
-        middles, B = value_middles(w, lU, hU, lR), factors.readouts(lR)  # [H, dh, dh], [H, V, dh]
-        return lambda hR: value_side(A, middles[hR], B[hR], orientation)
-    middles, K = query_middles(w, lU, hU, lR, rotation=M), factors.keys(lR)  # [H, dh, dh], [H, V, dh]
-    if part == "full":
-        return lambda hR: query_side(A, middles[hR], K[hR], orientation)
-    alpha, Uq = factors.alpha(unit.writer), factors.unembed_queries(lU, lR)  # [V], [H, V, dh]
-    return lambda hR: query_part_side(A, middles[hR], K[hR], part, alpha, Uq[hR], orientation)
+    row, M = options.orientation == "row", factors.rotation  # M [dh, dh] or None: every score is q M k^T
+    if options.side == "key":  # rows: query tokens; columns: written tokens
+        middle = key_middles(w, lU, hU, lR, rotation=M)[hR]  # [dh, dh]
+        Q = factors.queries(lR)[hR]  # [V, dh]
+        if row:
+            return Q, lambda: A @ middle
+        return RowProduct(A, middle), _prepared_fixed(factors, "queries", lR, hR, lambda: Q, options)
+    if options.side == "value":  # row orientation only (validated)
+        return (RowProduct(A, value_middles(w, lU, hU, lR)[hR]),
+                _prepared_fixed(factors, "readouts", lR, hR, lambda: factors.readouts(lR)[hR], options))
+    middle = query_middles(w, lU, hU, lR, rotation=M)[hR]  # [dh, dh]
+    K = factors.keys(lR)[hR]  # [V, dh]
+    alpha, Uq = factors.alpha(unit.writer), factors.unembed_queries(lU, lR)[hR]  # [V], [V, dh]
+    part = lambda: query_part_side(A, middle, K, options.query_part, alpha, Uq)[0]  # noqa: E731  [V, dh]
+    return (part, _prepared_keys(factors, lR, hR, options)) if row else (K, part)
+
+
+def _prepared_fixed(factors: _FactorCache, name: str, layer: int, head: int, build, options: ScanOptions):
+    """A per-layer right factor other than the keys, packed for the ranks kernel once per layer."""
+    key = (name, layer, options.precision, options.device, options.engine)
+    store = factors.__dict__.setdefault("_side_prepared", {})
+    if store.get("key") != key:
+        store.clear()
+        store["key"] = key
+    if head not in store:
+        store[head] = prepare_right(build(), options.precision, options.device, options.engine)
+    return store[head]
 
 
 def _store(arrays, index, s) -> None:
-    arrays["top_share"][index] = s.top_share
-    arrays["bottom_share"][index] = s.bottom_share
-    arrays["mean_percentile"][index] = s.mean_percentile
-    arrays["histogram"][index] = s.histogram
-    arrays["rows_evaluated"][index] = s.rows
-    arrays["p_value"][index] = s.p_value
-    arrays["write_fraction"][index] = s.write_fraction
+    for name, value in s.datasets().items():
+        if name in arrays:
+            arrays[name][index] = value
     arrays["done"][index] = True
 
 

@@ -57,6 +57,14 @@ PAIR_DATASETS = {
     "p_value": ("f8", np.nan, None),
     "q_value": ("f8", np.nan, None),
     "label": ("i1", LABEL_NOT_COMPUTED, None),
+    # 95 % intervals (exact hypergeometric for shares, Serfling for the mean; zero width
+    # when every row was evaluated); see composition.stats
+    "ci_low": ("f8", np.nan, "k"),  # top-k share
+    "ci_high": ("f8", np.nan, "k"),
+    "bottom_ci_low": ("f8", np.nan, "k"),  # bottom-k share
+    "bottom_ci_high": ("f8", np.nan, "k"),
+    "mean_ci_low": ("f8", np.nan, None),  # mean percentile
+    "mean_ci_high": ("f8", np.nan, None),
     "done": ("?", False, None),
     # fraction of the writer's squared write norm carried by the scan's query part (METHODS §3b):
     # depends on the writer only; 1 for part full and for the key and value sides

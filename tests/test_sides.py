@@ -539,3 +539,21 @@ def test_every_side_and_part_on_every_family(families, tmp_path, name):
                                     rotary_offsets=None if M is None else (0, 3)))
         assert scan.done[0, 1, 1, 2] and scan.attrs["side"] == side and scan.attrs["query_part"] == part
         assert scan.mean_percentile[0, 1, 1, 2] == summarise(og.midranks_rows(S), w.vocab_size).mean_percentile
+
+
+@pytest.mark.parametrize("side,part", [("key", "full"), ("value", "full"), ("query", "rest")])
+def test_sampled_rows_on_other_sides(small, tmp_path, side, part):
+    """A sampled scan (--rows, rows drawn as numpy.random.default_rng(seed).permutation(V)[:rows])
+    of the key side, the value side and a query part stores the statistics of exactly those rows'
+    exact midranks in the oracle's dense matrix (on the key side the rows are query tokens).
+
+    Reference library: scipy.stats.rankdata, numpy.random.default_rng; Source: METHODS.md §3b, §4"""
+    scan = run_scan(small.dir, tmp_path / "s.h5", ScanOptions(side=side, query_part=part, writers="0.1",
+                                                             responders="2", rows=60, seed=5))
+    rows = np.random.default_rng(5).permutation(CFG["vocab_size"])[:60]
+    for hR in range(CFG["n_head"]):
+        ranks = og.midranks_rows(_oracle(small, (0, 1), (2, hR), side, part), rows=rows)
+        ix = (0, 1, 2, hR)
+        assert scan.rows_evaluated[ix] == 60
+        assert scan.mean_percentile[ix] == pytest.approx(np.mean(1 - ranks / (CFG["vocab_size"] - 1)), abs=1e-15)
+        np.testing.assert_array_equal(scan.top_share[ix], [(ranks < k).mean() for k in scan.k])
