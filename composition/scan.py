@@ -137,6 +137,8 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     _label_all(arrays, options)
     attrs = _attrs(w, options, ks, len(pairs))
     write_scan(out, attrs, arrays)
+    from .heads import add_to_scan  # issue 6: /heads and /model_space groups (composition/heads.py)
+    add_to_scan(out, w, T)
     return load_scan(out)
 
 
