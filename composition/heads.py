@@ -151,8 +151,9 @@ def _frob2_factored(G_left: torch.Tensor, M: torch.Tensor, G_right: torch.Tensor
 
 
 @dataclass(frozen=True)
-class _HeadFactors:
-    """Norm-folded per-head factors of one layer (row-vector form)."""
+class HeadFactors:
+    """Norm-folded per-head factors of one layer (row-vector form):
+    ``W_OV = ov_in @ ov_out.T`` and ``W_QK = q @ k.T``, each ``[d, d]`` of rank <= dh."""
 
     ov_in: torch.Tensor  # [H, d, dh]  Lin(N_l) W_V
     ov_out: torch.Tensor  # [H, d, dh]  W_O^T
@@ -160,14 +161,15 @@ class _HeadFactors:
     k: torch.Tensor  # [H, d, dh]  Lin(N_l) W_K
 
 
-def _layer_factors(w: Weights, layer: int) -> _HeadFactors:
+def layer_factors(w: Weights, layer: int) -> HeadFactors:
+    """The norm-folded factors of every head of ``layer`` (METHODS §7)."""
     attn = w.layers[layer].attn
     lin = norm_linear_part(input_norm(w, layer), w.d_model)  # [d, d]
     fold = lambda W: torch.einsum("df,hfe->hde", lin, W.double())  # noqa: E731  [H, d, dh]
-    return _HeadFactors(fold(attn.W_V), attn.W_O.double().transpose(1, 2), fold(attn.W_Q), fold(attn.W_K))
+    return HeadFactors(fold(attn.W_V), attn.W_O.double().transpose(1, 2), fold(attn.W_Q), fold(attn.W_K))
 
 
-def composition_scores(writer: _HeadFactors, responder: _HeadFactors, paired: bool = False
+def composition_scores(writer: HeadFactors, responder: HeadFactors, paired: bool = False
                        ) -> dict[str, torch.Tensor]:
     """Q-, K- and V-composition scores of writer heads against responder heads.
 
@@ -211,8 +213,8 @@ def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int
     def gauss():
         return torch.randn(draws, d, dh, generator=g, dtype=torch.float64)  # [n, d, dh]
 
-    writer = _HeadFactors(gauss(), gauss(), gauss(), gauss())
-    responder = _HeadFactors(gauss(), gauss(), gauss(), gauss())
+    writer = HeadFactors(gauss(), gauss(), gauss(), gauss())
+    responder = HeadFactors(gauss(), gauss(), gauss(), gauss())
     scores = composition_scores(writer, responder, paired=True)  # {kind: [n]}
     return {kind: (float(s.mean()), float(s.std())) for kind, s in scores.items()}
 
@@ -263,7 +265,7 @@ def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASE
     arrays = {f"{kind}_composition": np.full(shape, np.nan) for kind in KINDS}
     arrays.update({f"projection_kernel_{kind}": np.full(shape, np.nan) for kind in KINDS})
     arrays.update({f"kernel_random_mean_{kind}": np.full(shape, np.nan) for kind in KINDS})
-    layers = [_layer_factors(w, layer) for layer in range(L)]
+    layers = [layer_factors(w, layer) for layer in range(L)]
     write, arrays["write_dim"] = _padded_bases([f.ov_out for f in layers])  # row space of W_O^U
     read = {}
     for kind, field_name in (("q", "q"), ("k", "k"), ("v", "ov_in")):

@@ -52,8 +52,7 @@ def diverging_colormap():
 
     cmap = LinearSegmentedColormap.from_list(
         "composition-diverging", [*LOW_COLOURS, NULL_COLOUR, *HIGH_COLOURS], N=256)
-    cmap.set_bad((0, 0, 0, 0))  # transparent: the hatched background shows through
-    return cmap
+    return cmap.with_extremes(bad=(0, 0, 0, 0))  # transparent: the hatched background shows through
 
 
 @dataclass(frozen=True)
@@ -224,8 +223,7 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
     index = np.full(grid.shape, np.nan)
     for i, k in enumerate(keys):
         index[grid == k] = i
-    cmap = ListedColormap(colours)
-    cmap.set_bad((0, 0, 0, 0))
+    cmap = ListedColormap(colours).with_extremes(bad=(0, 0, 0, 0))
     fig, ax = plt.subplots(figsize=_figure_size(*grid.shape, extra_width=2.4))
     _empty_background(ax, *grid.shape)
     ax.imshow(np.ma.masked_invalid(index), cmap=cmap, norm=BoundaryNorm(np.arange(len(keys) + 1) - 0.5, len(keys)),
