@@ -3,7 +3,7 @@
 Layout of the report directory::
 
     index.html          the page; every figure inlined as a PNG data URI, no network access
-    figures/NAME.png    each figure as PNG (150 dpi) ...
+    figures/NAME.png    each figure as PNG (120 dpi) ...
     figures/NAME.svg    ... and as SVG (text kept as text)
     tables/*.csv        pairs, heads, model-space scores, shortlist, compensation predictions
 """
@@ -319,7 +319,8 @@ def _table(header: list[str], rows: list[list[str]], text_cols: int = 1, left_la
     th = "".join(f'<th class="{cls(i)}">{_e(h)}</th>' for i, h in enumerate(header))
     body = "".join("<tr>" + "".join(f'<td class="{cls(i)}">{c}</td>' for i, c in enumerate(r)) + "</tr>"
                    for r in rows)
-    return f"<table><thead><tr>{th}</tr></thead><tbody>{body}</tbody></table>"
+    head = f"<thead><tr>{th}</tr></thead>" if any(header) else ""
+    return f"<table>{head}<tbody>{body}</tbody></table>"
 
 
 def _figure_html(fig: Figure, out: Path) -> str:

@@ -27,6 +27,7 @@ EMPTY_FACE = "#ffffff"
 HATCH_COLOUR = "#cfc8ba"
 GRID_COLOUR = "#3b3b3b"
 TEXT_COLOUR = "#222222"
+PNG_DPI = 120  # a 9-inch figure is about 1080 px: shown near 1:1 in the report page
 LABEL_ALL_HEADS = 48  # label every head when an axis has at most this many; else layers only
 
 
@@ -84,7 +85,7 @@ class Axes:
 
 
 def _figure_size(n_rows: int, n_cols: int, extra_width: float = 1.6) -> tuple[float, float]:
-    cell = float(np.clip(9.0 / max(n_rows, n_cols), 0.075, 0.32))
+    cell = float(np.clip(7.5 / max(n_rows, n_cols), 0.075, 0.26))
     return max(4.8, n_cols * cell + extra_width + 1.2), max(3.6, n_rows * cell + 1.6)
 
 
@@ -133,7 +134,7 @@ def _save(fig, out_dir: Path, stem: str) -> dict[str, Path]:
     paths = {}
     for ext in ("png", "svg"):
         p = out_dir / f"{stem}.{ext}"
-        fig.savefig(p, dpi=150 if ext == "png" else None, bbox_inches="tight", facecolor="white")
+        fig.savefig(p, dpi=PNG_DPI if ext == "png" else None, bbox_inches="tight", facecolor="white")
         paths[ext] = p
     _, plt = _mpl()
     plt.close(fig)
@@ -237,7 +238,7 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
         cells = [(i, j) for i, j in zip(*np.nonzero(ann != "")) if np.isfinite(index[i, j])]
         if len(cells) <= max_annotations:
             cell_points = 72 * _figure_size(*grid.shape)[0] / (grid.shape[1] + 8)
-            size = float(np.clip(cell_points * 0.3, 3.5, 8.0))
+            size = float(np.clip(cell_points * 0.36, 3.5, 9.0))
             for i, j in cells:
                 dark = categories[keys[int(index[i, j])]] in ("reinforcing", "neutral", "none")
                 ax.text(j, i, ann[i, j], ha="center", va="center", fontsize=size, zorder=3,
@@ -330,6 +331,6 @@ def pair_histogram(hist: np.ndarray, title: str, path: Path) -> Path:
     fig, ax = plt.subplots(figsize=(5.2, 3.0))
     _histogram_axes(ax, np.asarray(hist), title)
     fig.tight_layout()
-    fig.savefig(path, dpi=150, bbox_inches="tight", facecolor="white")
+    fig.savefig(path, dpi=PNG_DPI, bbox_inches="tight", facecolor="white")
     plt.close(fig)
     return path
