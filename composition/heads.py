@@ -135,6 +135,11 @@ def _gram(X: torch.Tensor) -> torch.Tensor:
     return X.transpose(-1, -2) @ X
 
 
+def _trace_product(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    """``tr(A B)`` of symmetric pairs. # A, B [n, r, r] -> [n]"""
+    return (A * B).sum((-1, -2))
+
+
 def _frob2_factored(G_left: torch.Tensor, M: torch.Tensor, G_right: torch.Tensor, paired: bool) -> torch.Tensor:
     """``|X M Y^T|_F^2`` from ``G_left = X^T X`` and ``G_right = Y^T Y``.
 
@@ -169,34 +174,98 @@ def layer_factors(w: Weights, layer: int) -> HeadFactors:
     return HeadFactors(fold(attn.W_V), attn.W_O.double().transpose(1, 2), fold(attn.W_Q), fold(attn.W_K))
 
 
-def composition_scores(writer: HeadFactors, responder: HeadFactors, paired: bool = False
-                       ) -> dict[str, torch.Tensor]:
-    """Q-, K- and V-composition scores of writer heads against responder heads.
+@dataclass(frozen=True)
+class _Basis:
+    """``X = U R``: ``U`` orthonormal columns spanning ``X``'s column space (zero-padded to
+    the head width), ``rank`` the numerical rank."""
 
-    # all pairs -> {"q"|"k"|"v": [H_U, H_R]}; paired (head i with head i) -> {...: [n]}
+    U: torch.Tensor  # [n, d, r]
+    R: torch.Tensor  # [n, r, r]
+    rank: np.ndarray  # [n]
+
+
+_RANK_RTOL = 1e-6  # singular values below 1e-6 s_max count as zero (resolvable from the Gram matrix)
+
+
+def _basis(X: torch.Tensor, G: torch.Tensor | None = None) -> _Basis:
+    """Orthonormal basis of every head's factor from its ``[r, r]`` Gram matrix.
+
+    # X [n, d, r], G [n, r, r] = X^T X -> _Basis
+    Eigenvectors ``V`` of ``G`` with eigenvalues above ``(1e-6)^2 lambda_max`` give
+    ``U0 = X V s^-1``; one Cholesky re-orthonormalisation (``U = U0 L^-T``, ``L L^T = U0^T U0``)
+    removes the rounding that the Gram matrix's squared condition number leaves. ``R = U^T X``.
+    Zero columns of ``U`` and zero rows of ``R`` add nothing to any product.
     """
-    G_in = _gram(writer.ov_in)  # [HU, dh, dh]  (Lin W_V^U)^T (Lin W_V^U)
-    ov_norm2 = torch.einsum("ars,asr->a", G_in, _gram(writer.ov_out))  # [HU] |W_OV^U|_F^2
-    Gq, Gk = _gram(responder.q), _gram(responder.k)  # [HR, dh, dh]
-    qk_norm2 = torch.einsum("brs,bsr->b", Gq, Gk)  # [HR] |W_QK^R|_F^2
-    G_rin, G_rout = _gram(responder.ov_in), _gram(responder.ov_out)
-    rov_norm2 = torch.einsum("brs,bsr->b", G_rin, G_rout)  # [HR] |W_OV^R|_F^2
-    O = writer.ov_out  # [HU, d, dh]  (W_O^U)^T
+    G = _gram(X) if G is None else G
+    lam, V = torch.linalg.eigh(G)  # [n, r] ascending, [n, r, r]
+    lam_max = lam[:, -1:].clamp_min(0.0)
+    keep = (lam > (_RANK_RTOL**2) * lam_max) & (lam_max > 0)  # [n, r]
+    scale = torch.where(keep, lam.clamp_min(torch.finfo(torch.float64).tiny).rsqrt(), torch.zeros_like(lam))
+    U0 = (X @ V) * scale[:, None, :]  # [n, d, r], zero columns where not kept
+    G0 = _gram(U0) + torch.diag_embed((~keep).double())  # [n, r, r], identity on dropped columns
+    L = torch.linalg.cholesky(G0)  # [n, r, r]
+    U = torch.linalg.solve_triangular(L, U0.transpose(1, 2), upper=False).transpose(1, 2)  # [n, d, r] = U0 L^-T
+    U = U * keep[:, None, :]
+    return _Basis(U, U.transpose(1, 2) @ X, keep.sum(1).numpy().astype(np.int64))
 
-    def middle(Y):  # W_O^U Y^R: all pairs [HU, HR, dh, dh], paired [n, dh, dh]
-        return O.transpose(1, 2) @ Y if paired else torch.einsum("ade,bdf->abef", O, Y)
 
-    num = {
-        "q": _frob2_factored(G_in, middle(responder.q), Gk, paired),  # W_OV^U W_QK^R
-        "k": _frob2_factored(G_in, middle(responder.k), Gq, paired),  # W_OV^U (W_QK^R)^T
-        "v": _frob2_factored(G_in, middle(responder.ov_in), G_rout, paired),  # W_OV^U W_OV^R
-    }
-    den = {"q": qk_norm2, "k": qk_norm2, "v": rov_norm2}
+@dataclass(frozen=True)
+class _Prepared:
+    """Everything of one layer's heads that the pair scores need, computed once per layer."""
+
+    G_in: torch.Tensor  # [n, r, r]  Gram of Lin W_V
+    G_out: torch.Tensor  # [n, r, r]  Gram of W_O^T
+    G_q: torch.Tensor
+    G_k: torch.Tensor
+    ov_norm2: torch.Tensor  # [n]  |W_OV|_F^2
+    qk_norm2: torch.Tensor  # [n]  |W_QK|_F^2
+    bases: dict  # "out", "q", "k", "v" -> _Basis of W_O^T, Lin W_Q, Lin W_K, Lin W_V
+
+
+def _prepare(f: HeadFactors, with_bases: bool = True) -> _Prepared:
+    G_in, G_out, G_q, G_k = _gram(f.ov_in), _gram(f.ov_out), _gram(f.q), _gram(f.k)  # [n, r, r]
+    bases = ({"out": _basis(f.ov_out, G_out), "q": _basis(f.q, G_q), "k": _basis(f.k, G_k),
+              "v": _basis(f.ov_in, G_in)} if with_bases else {})
+    return _Prepared(G_in, G_out, G_q, G_k, _trace_product(G_in, G_out), _trace_product(G_q, G_k), bases)
+
+
+def _scores(writer: _Prepared, responder: _Prepared, middles: dict, paired: bool) -> dict[str, torch.Tensor]:
+    """Composition scores from the middles ``W_O^U Y^R`` of each kind. # -> {"q"|"k"|"v": [a, b] or [n]}"""
+    right = {"q": responder.G_k, "k": responder.G_q, "v": responder.G_out}  # Gram of the right factor
+    den = {"q": responder.qk_norm2, "k": responder.qk_norm2, "v": responder.ov_norm2}
     out = {}
     for kind in KINDS:
-        d = torch.sqrt(ov_norm2 * den[kind]) if paired else torch.sqrt(ov_norm2[:, None] * den[kind][None, :])
-        out[kind] = torch.where(d > 0, torch.sqrt(num[kind]) / torch.where(d > 0, d, 1.0), torch.nan)
+        num = _frob2_factored(writer.G_in, middles[kind], right[kind], paired)
+        d = writer.ov_norm2 * den[kind] if paired else writer.ov_norm2[:, None] * den[kind][None, :]
+        d = torch.sqrt(d)
+        out[kind] = torch.where(d > 0, torch.sqrt(num) / torch.where(d > 0, d, 1.0), torch.nan)
     return out
+
+
+def _pair_scores(writer: _Prepared, responder: _Prepared) -> tuple[dict, dict]:
+    """Composition scores and projection kernels of every writer head against every responder head.
+
+    # -> ({kind: [H_U, H_R]} scores, {kind: [H_U, H_R]} kernels)
+    One [H dh, H dh] product per kind: the cosines ``C = U_out^T U_Y`` between the writer's
+    write basis and the responder's read basis give the kernel ``|C|_F^2`` and, with
+    ``X = U R``, the middle ``W_O^U Y^R = R_out^T C R_Y`` of the composition score.
+    """
+    wb = writer.bases["out"]
+    middles, kernels = {}, {}
+    for kind in KINDS:
+        rb = responder.bases[kind]
+        cos = torch.einsum("ade,bdf->abef", wb.U, rb.U)  # [HU, HR, r, r]
+        kernels[kind] = cos.pow(2).sum((-1, -2))  # [HU, HR]
+        middles[kind] = torch.einsum("aed,abef->abdf", wb.R, cos) @ rb.R[None]  # [HU, HR, dh, dh]
+    return _scores(writer, responder, middles, paired=False), kernels
+
+
+def composition_scores(writer: HeadFactors, responder: HeadFactors) -> dict[str, torch.Tensor]:
+    """Q-, K- and V-composition scores of every writer head against every responder head.
+
+    # -> {"q"|"k"|"v": [H_U, H_R]}
+    """
+    return _pair_scores(_prepare(writer), _prepare(responder))[0]
 
 
 def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int = BASELINE_SEED
@@ -204,7 +273,8 @@ def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int
     """Mean and standard deviation of each composition score for i.i.d. Gaussian factors.
 
     Factors of the same shapes as one head's (``W_V``, ``W_Q``, ``W_K`` ``[d, dh]``, ``W_O``
-    ``[dh, d]``), standard normal entries, no norm. # -> {"q"|"k"|"v": (mean, sd)}
+    ``[dh, d]``), standard normal entries, no norm; draw ``i``'s writer against draw ``i``'s
+    responder. # -> {"q"|"k"|"v": (mean, sd)}
     """
     if draws < 2:
         raise CompositionError("--baseline-draws must be at least 2.")
@@ -215,36 +285,17 @@ def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int
 
     writer = HeadFactors(gauss(), gauss(), gauss(), gauss())
     responder = HeadFactors(gauss(), gauss(), gauss(), gauss())
-    scores = composition_scores(writer, responder, paired=True)  # {kind: [n]}
+    wp, rp = _prepare(writer, with_bases=False), _prepare(responder, with_bases=False)
+    O_t = writer.ov_out.transpose(1, 2)  # [n, dh, d]  W_O^U
+    middles = {"q": O_t @ responder.q, "k": O_t @ responder.k, "v": O_t @ responder.ov_in}  # [n, dh, dh]
+    scores = _scores(wp, rp, middles, paired=True)  # {kind: [n]}
     return {kind: (float(s.mean()), float(s.std())) for kind, s in scores.items()}
 
 
-def orthonormal_basis(X: torch.Tensor, rtol: float | None = None) -> torch.Tensor:
+def orthonormal_basis(X: torch.Tensor) -> torch.Tensor:
     """Orthonormal basis of the column space of ``X`` (numerical rank by SVD). # X [d, r] -> [d, rank]"""
-    U, s, _ = torch.linalg.svd(X.double(), full_matrices=False)  # U [d, r], s [r]
-    if s.numel() == 0 or float(s[0]) == 0.0:
-        return U[:, :0]
-    tol = (rtol if rtol is not None else max(X.shape) * torch.finfo(torch.float64).eps) * float(s[0])
-    return U[:, s > tol]
-
-
-def _padded_bases(per_layer: list[torch.Tensor]) -> tuple[list[torch.Tensor], np.ndarray]:
-    """Orthonormal column-space bases of every head, zero-padded to the head width.
-
-    # per_layer: L x [H, d, dh] -> (L x [H, d, dh], dims [L, H]); zero columns add nothing
-    to a projection kernel.
-    """
-    out, dims = [], []
-    for X in per_layer:
-        bases = torch.zeros_like(X, dtype=torch.float64)  # [H, d, dh]
-        row = []
-        for h in range(X.shape[0]):
-            Q = orthonormal_basis(X[h])  # [d, rank]
-            bases[h, :, :Q.shape[1]] = Q
-            row.append(Q.shape[1])
-        out.append(bases)
-        dims.append(row)
-    return out, np.array(dims, np.int64)
+    b = _basis(X.double()[None])
+    return b.U[0, :, : int(b.rank[0])]
 
 
 def projection_kernel(Q1: torch.Tensor, Q2: torch.Tensor) -> float:
@@ -265,18 +316,16 @@ def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASE
     arrays = {f"{kind}_composition": np.full(shape, np.nan) for kind in KINDS}
     arrays.update({f"projection_kernel_{kind}": np.full(shape, np.nan) for kind in KINDS})
     arrays.update({f"kernel_random_mean_{kind}": np.full(shape, np.nan) for kind in KINDS})
-    layers = [layer_factors(w, layer) for layer in range(L)]
-    write, arrays["write_dim"] = _padded_bases([f.ov_out for f in layers])  # row space of W_O^U
-    read = {}
-    for kind, field_name in (("q", "q"), ("k", "k"), ("v", "ov_in")):
-        read[kind], arrays[f"read_dim_{kind}"] = _padded_bases([getattr(f, field_name) for f in layers])
+    prepared = [_prepare(layer_factors(w, layer)) for layer in range(L)]
+    arrays["write_dim"] = np.stack([p.bases["out"].rank for p in prepared])  # [L, H] rank of W_O
+    for kind in KINDS:
+        arrays[f"read_dim_{kind}"] = np.stack([p.bases[kind].rank for p in prepared])  # [L, H]
     for lU in range(L):
         for lR in range(lU + 1, L):
-            scores = composition_scores(layers[lU], layers[lR])  # {kind: [H, H]}
+            scores, kernels = _pair_scores(prepared[lU], prepared[lR])  # {kind: [H, H]}
             for kind in KINDS:
                 arrays[f"{kind}_composition"][lU, :, lR, :] = scores[kind].numpy()
-                cos = torch.einsum("hda,gdb->hgab", write[lU], read[kind][lR])  # [H, H, dh, dh]
-                arrays[f"projection_kernel_{kind}"][lU, :, lR, :] = cos.pow(2).sum((-1, -2)).numpy()
+                arrays[f"projection_kernel_{kind}"][lU, :, lR, :] = kernels[kind].numpy()
                 dims = np.outer(arrays["write_dim"][lU], arrays[f"read_dim_{kind}"][lR])  # [H, H]
                 arrays[f"kernel_random_mean_{kind}"][lU, :, lR, :] = dims / d
     base = composition_baseline(d, w.d_head, draws, seed)
