@@ -135,24 +135,27 @@ def _gram(X: torch.Tensor) -> torch.Tensor:
     return X.transpose(-1, -2) @ X
 
 
-def _trace_product(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
-    """``tr(A B)`` of symmetric pairs. # A, B [n, r, r] -> [n]"""
-    return (A * B).sum((-1, -2))
+def _sqrt_psd(G: torch.Tensor) -> torch.Tensor:
+    """A square root ``S`` with ``S S^T = G`` of symmetric positive semi-definite matrices.
 
-
-def _frob2_factored(G_left: torch.Tensor, M: torch.Tensor, G_right: torch.Tensor, paired: bool) -> torch.Tensor:
-    """``|X M Y^T|_F^2`` from ``G_left = X^T X`` and ``G_right = Y^T Y``.
-
-    # all pairs: G_left [a, r, r], M [a, b, r, s], G_right [b, s, s] -> [a, b]
-    # paired:    G_left [n, r, r], M [n, r, s],    G_right [n, s, s] -> [n]
+    # G [n, r, r] -> [n, r, r]
     """
-    if paired:
-        GM = G_left @ M  # [n, r, s]
-        MG = M @ G_right  # [n, r, s]
-    else:
-        GM = torch.einsum("aer,abrs->abes", G_left, M)  # [a, b, r, s]
-        MG = torch.einsum("abrs,bst->abrt", M, G_right)  # [a, b, r, s]
-    return (GM * MG).sum((-1, -2)).clamp_min(0.0)
+    lam, V = torch.linalg.eigh(G)  # [n, r], [n, r, r]
+    return V * lam.clamp_min(0.0).sqrt()[:, None, :]
+
+
+_CHUNK_BYTES = 64 * 2**20  # cap on the [a, b, r, r] block of cosines held at once
+
+
+def _cross_frob2(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    """``|A_i^T B_j|_F^2`` for every ``i``, ``j``. # A [a, d, r], B [b, d, s] -> [a, b]
+
+    One matrix product per chunk of ``B``, so the ``[a, b, r, s]`` block stays small.
+    """
+    a, _, r = A.shape
+    step = max(1, _CHUNK_BYTES // (8 * a * r * B.shape[2]))
+    out = [torch.einsum("ade,bdf->abef", A, B[j:j + step]).pow(2).sum((-1, -2)) for j in range(0, B.shape[0], step)]
+    return torch.cat(out, 1) if out else A.new_zeros(a, 0)
 
 
 @dataclass(frozen=True)
@@ -166,35 +169,38 @@ class HeadFactors:
     k: torch.Tensor  # [H, d, dh]  Lin(N_l) W_K
 
 
+def fold_norm(norm, W: torch.Tensor) -> torch.Tensor:
+    """``Lin(N) W`` without forming ``Lin(N)`` (METHODS §1): ``diag(gamma)`` scales rows, the
+    LayerNorm centring ``P = I - 11^T/d`` subtracts the mean over rows. # W [H, d, dh] -> [H, d, dh]"""
+    W = W.double()
+    if norm.kind == "identity":
+        return W
+    if norm.kind not in ("layernorm", "rmsnorm"):
+        raise CompositionError(f"norm kind {norm.kind!r} is not supported.")
+    if norm.weight is not None:
+        W = W * norm.weight.double()[None, :, None]
+    return W - W.mean(1, keepdim=True) if norm.kind == "layernorm" else W
+
+
 def layer_factors(w: Weights, layer: int) -> HeadFactors:
     """The norm-folded factors of every head of ``layer`` (METHODS §7)."""
     attn = w.layers[layer].attn
-    lin = norm_linear_part(input_norm(w, layer), w.d_model)  # [d, d]
-    fold = lambda W: torch.einsum("df,hfe->hde", lin, W.double())  # noqa: E731  [H, d, dh]
-    return HeadFactors(fold(attn.W_V), attn.W_O.double().transpose(1, 2), fold(attn.W_Q), fold(attn.W_K))
-
-
-@dataclass(frozen=True)
-class _Basis:
-    """``X = U R``: ``U`` orthonormal columns spanning ``X``'s column space (zero-padded to
-    the head width), ``rank`` the numerical rank."""
-
-    U: torch.Tensor  # [n, d, r]
-    R: torch.Tensor  # [n, r, r]
-    rank: np.ndarray  # [n]
+    norm = input_norm(w, layer)
+    return HeadFactors(fold_norm(norm, attn.W_V), attn.W_O.double().transpose(1, 2), fold_norm(norm, attn.W_Q),
+                       fold_norm(norm, attn.W_K))
 
 
 _RANK_RTOL = 1e-6  # singular values below 1e-6 s_max count as zero (resolvable from the Gram matrix)
 
 
-def _basis(X: torch.Tensor, G: torch.Tensor | None = None) -> _Basis:
+def _basis(X: torch.Tensor, G: torch.Tensor | None = None) -> tuple[torch.Tensor, np.ndarray]:
     """Orthonormal basis of every head's factor from its ``[r, r]`` Gram matrix.
 
-    # X [n, d, r], G [n, r, r] = X^T X -> _Basis
+    # X [n, d, r], G [n, r, r] = X^T X -> (U [n, d, r] zero-padded, rank [n])
     Eigenvectors ``V`` of ``G`` with eigenvalues above ``(1e-6)^2 lambda_max`` give
     ``U0 = X V s^-1``; one Cholesky re-orthonormalisation (``U = U0 L^-T``, ``L L^T = U0^T U0``)
-    removes the rounding that the Gram matrix's squared condition number leaves. ``R = U^T X``.
-    Zero columns of ``U`` and zero rows of ``R`` add nothing to any product.
+    removes the rounding that the Gram matrix's squared condition number leaves. Zero
+    columns of ``U`` add nothing to a projection kernel.
     """
     G = _gram(X) if G is None else G
     lam, V = torch.linalg.eigh(G)  # [n, r] ascending, [n, r, r]
@@ -202,62 +208,61 @@ def _basis(X: torch.Tensor, G: torch.Tensor | None = None) -> _Basis:
     keep = (lam > (_RANK_RTOL**2) * lam_max) & (lam_max > 0)  # [n, r]
     scale = torch.where(keep, lam.clamp_min(torch.finfo(torch.float64).tiny).rsqrt(), torch.zeros_like(lam))
     U0 = (X @ V) * scale[:, None, :]  # [n, d, r], zero columns where not kept
-    G0 = _gram(U0) + torch.diag_embed((~keep).double())  # [n, r, r], identity on dropped columns
-    L = torch.linalg.cholesky(G0)  # [n, r, r]
+    L = torch.linalg.cholesky(_gram(U0) + torch.diag_embed((~keep).double()))  # [n, r, r]
     U = torch.linalg.solve_triangular(L, U0.transpose(1, 2), upper=False).transpose(1, 2)  # [n, d, r] = U0 L^-T
-    U = U * keep[:, None, :]
-    return _Basis(U, U.transpose(1, 2) @ X, keep.sum(1).numpy().astype(np.int64))
+    return U * keep[:, None, :], keep.sum(1).numpy().astype(np.int64)
 
 
 @dataclass(frozen=True)
 class _Prepared:
-    """Everything of one layer's heads that the pair scores need, computed once per layer."""
+    """One layer's heads, reduced to what the pair scores need (computed once per layer).
 
-    G_in: torch.Tensor  # [n, r, r]  Gram of Lin W_V
-    G_out: torch.Tensor  # [n, r, r]  Gram of W_O^T
-    G_q: torch.Tensor
-    G_k: torch.Tensor
+    For ``Z = X M Y^T`` with Gram square roots ``S_X S_X^T = X^T X``, ``S_Y S_Y^T = Y^T Y``:
+    ``|Z|_F^2 = |S_X^T M S_Y|_F^2``. With ``M = W_O^U Y'^R`` this is ``|Z_U^T Z_R|_F^2`` where
+    ``Z_U = W_O^U^T S_X`` (writer side) and ``Z_R = Y'^R S_Y`` (responder side, per kind).
+    """
+
     ov_norm2: torch.Tensor  # [n]  |W_OV|_F^2
     qk_norm2: torch.Tensor  # [n]  |W_QK|_F^2
-    bases: dict  # "out", "q", "k", "v" -> _Basis of W_O^T, Lin W_Q, Lin W_K, Lin W_V
+    writer_z: torch.Tensor | None  # [n, d, dh]  W_O^T S(Lin W_V)
+    responder_z: dict  # "q" | "k" | "v" -> [n, d, dh]
+    bases: dict  # "out" | "q" | "k" | "v" -> (U [n, d, dh], rank [n]) of W_O^T, Lin W_Q, Lin W_K, Lin W_V
 
 
 def _prepare(f: HeadFactors, with_bases: bool = True) -> _Prepared:
     G_in, G_out, G_q, G_k = _gram(f.ov_in), _gram(f.ov_out), _gram(f.q), _gram(f.k)  # [n, r, r]
+    S_in, S_out, S_q, S_k = (_sqrt_psd(G) for G in (G_in, G_out, G_q, G_k))
+    responder_z = {"q": f.q @ S_k,  # W_OV^U W_QK^R: middle W_O^U Lin W_Q^R, right factor Lin W_K^R
+                   "k": f.k @ S_q,  # W_OV^U (W_QK^R)^T: middle W_O^U Lin W_K^R, right factor Lin W_Q^R
+                   "v": f.ov_in @ S_out}  # W_OV^U W_OV^R: middle W_O^U Lin W_V^R, right factor W_O^R^T
     bases = ({"out": _basis(f.ov_out, G_out), "q": _basis(f.q, G_q), "k": _basis(f.k, G_k),
               "v": _basis(f.ov_in, G_in)} if with_bases else {})
-    return _Prepared(G_in, G_out, G_q, G_k, _trace_product(G_in, G_out), _trace_product(G_q, G_k), bases)
+    return _Prepared((G_in * G_out).sum((-1, -2)), (G_q * G_k).sum((-1, -2)), f.ov_out @ S_in, responder_z, bases)
 
 
-def _scores(writer: _Prepared, responder: _Prepared, middles: dict, paired: bool) -> dict[str, torch.Tensor]:
-    """Composition scores from the middles ``W_O^U Y^R`` of each kind. # -> {"q"|"k"|"v": [a, b] or [n]}"""
-    right = {"q": responder.G_k, "k": responder.G_q, "v": responder.G_out}  # Gram of the right factor
-    den = {"q": responder.qk_norm2, "k": responder.qk_norm2, "v": responder.ov_norm2}
-    out = {}
-    for kind in KINDS:
-        num = _frob2_factored(writer.G_in, middles[kind], right[kind], paired)
-        d = writer.ov_norm2 * den[kind] if paired else writer.ov_norm2[:, None] * den[kind][None, :]
-        d = torch.sqrt(d)
-        out[kind] = torch.where(d > 0, torch.sqrt(num) / torch.where(d > 0, d, 1.0), torch.nan)
-    return out
+def _ratio(num2: torch.Tensor, den2: torch.Tensor) -> torch.Tensor:
+    d = torch.sqrt(den2)
+    return torch.where(d > 0, torch.sqrt(num2.clamp_min(0.0)) / torch.where(d > 0, d, 1.0), torch.nan)
 
 
 def _pair_scores(writer: _Prepared, responder: _Prepared) -> tuple[dict, dict]:
     """Composition scores and projection kernels of every writer head against every responder head.
 
     # -> ({kind: [H_U, H_R]} scores, {kind: [H_U, H_R]} kernels)
-    One [H dh, H dh] product per kind: the cosines ``C = U_out^T U_Y`` between the writer's
-    write basis and the responder's read basis give the kernel ``|C|_F^2`` and, with
-    ``X = U R``, the middle ``W_O^U Y^R = R_out^T C R_Y`` of the composition score.
     """
-    wb = writer.bases["out"]
-    middles, kernels = {}, {}
+    den = {"q": responder.qk_norm2, "k": responder.qk_norm2, "v": responder.ov_norm2}
+    scores, kernels = {}, {}
     for kind in KINDS:
-        rb = responder.bases[kind]
-        cos = torch.einsum("ade,bdf->abef", wb.U, rb.U)  # [HU, HR, r, r]
-        kernels[kind] = cos.pow(2).sum((-1, -2))  # [HU, HR]
-        middles[kind] = torch.einsum("aed,abef->abdf", wb.R, cos) @ rb.R[None]  # [HU, HR, dh, dh]
-    return _scores(writer, responder, middles, paired=False), kernels
+        num2 = _cross_frob2(writer.writer_z, responder.responder_z[kind])  # [HU, HR]
+        scores[kind] = _ratio(num2, writer.ov_norm2[:, None] * den[kind][None, :])
+        kernels[kind] = _cross_frob2(writer.bases["out"][0], responder.bases[kind][0])  # [HU, HR]
+    return scores, kernels
+
+
+def _layer_groups(first: int, L: int, H: int, max_heads: int = 64) -> list[list[int]]:
+    """Consecutive responder layers ``first .. L-1`` in groups of at most ``max_heads`` heads."""
+    per = max(1, max_heads // H)
+    return [list(range(l, min(L, l + per))) for l in range(first, L, per)]
 
 
 def composition_scores(writer: HeadFactors, responder: HeadFactors) -> dict[str, torch.Tensor]:
@@ -278,24 +283,29 @@ def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int
     """
     if draws < 2:
         raise CompositionError("--baseline-draws must be at least 2.")
-    g = torch.Generator().manual_seed(int(seed))
+    rng = np.random.default_rng(int(seed))
 
     def gauss():
-        return torch.randn(draws, d, dh, generator=g, dtype=torch.float64)  # [n, d, dh]
+        return torch.from_numpy(rng.standard_normal((draws, d, dh)))  # [n, d, dh] float64
 
-    writer = HeadFactors(gauss(), gauss(), gauss(), gauss())
-    responder = HeadFactors(gauss(), gauss(), gauss(), gauss())
-    wp, rp = _prepare(writer, with_bases=False), _prepare(responder, with_bases=False)
-    O_t = writer.ov_out.transpose(1, 2)  # [n, dh, d]  W_O^U
-    middles = {"q": O_t @ responder.q, "k": O_t @ responder.k, "v": O_t @ responder.ov_in}  # [n, dh, dh]
-    scores = _scores(wp, rp, middles, paired=True)  # {kind: [n]}
-    return {kind: (float(s.mean()), float(s.std())) for kind, s in scores.items()}
+    wp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
+    rp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
+    den = {"q": rp.qk_norm2, "k": rp.qk_norm2, "v": rp.ov_norm2}
+    out = {}
+    for kind in KINDS:
+        num2 = (wp.writer_z.transpose(1, 2) @ rp.responder_z[kind]).pow(2).sum((-1, -2))  # [n] paired
+        s = _ratio(num2, wp.ov_norm2 * den[kind])
+        out[kind] = (float(s.mean()), float(s.std()))
+    return out
 
 
 def orthonormal_basis(X: torch.Tensor) -> torch.Tensor:
-    """Orthonormal basis of the column space of ``X`` (numerical rank by SVD). # X [d, r] -> [d, rank]"""
-    b = _basis(X.double()[None])
-    return b.U[0, :, : int(b.rank[0])]
+    """Orthonormal basis of the column space of ``X`` (numerical rank from its Gram matrix).
+
+    # X [d, r] -> [d, rank]
+    """
+    U, rank = _basis(X.double()[None])
+    return U[0][:, U[0].abs().sum(0) > 0][:, : int(rank[0])]
 
 
 def projection_kernel(Q1: torch.Tensor, Q2: torch.Tensor) -> float:
@@ -309,7 +319,9 @@ def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASE
     """Composition scores and projection kernels of every pair, with their baselines.
 
     # -> ({name: [L, H, L, H] or [L, H]}, attrs); pairs with responder layer <= writer
-    layer hold NaN.
+    layer hold NaN. Per writer layer, later responder layers are handled in one product per
+    kind and group of later layers. Memory: about eight ``[H, d, dh]`` float64
+    tensors per layer (GPT-2 small: 0.45 GB).
     """
     L, H, d = w.n_layers, w.n_heads, w.d_model
     shape = (L, H, L, H)
@@ -317,17 +329,23 @@ def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASE
     arrays.update({f"projection_kernel_{kind}": np.full(shape, np.nan) for kind in KINDS})
     arrays.update({f"kernel_random_mean_{kind}": np.full(shape, np.nan) for kind in KINDS})
     prepared = [_prepare(layer_factors(w, layer)) for layer in range(L)]
-    arrays["write_dim"] = np.stack([p.bases["out"].rank for p in prepared])  # [L, H] rank of W_O
+    arrays["write_dim"] = np.stack([p.bases["out"][1] for p in prepared])  # [L, H] rank of W_O
     for kind in KINDS:
-        arrays[f"read_dim_{kind}"] = np.stack([p.bases[kind].rank for p in prepared])  # [L, H]
-    for lU in range(L):
-        for lR in range(lU + 1, L):
-            scores, kernels = _pair_scores(prepared[lU], prepared[lR])  # {kind: [H, H]}
+        arrays[f"read_dim_{kind}"] = np.stack([p.bases[kind][1] for p in prepared])  # [L, H]
+    for lU in range(L - 1):
+        for group in _layer_groups(lU + 1, L, H):
+            later = [prepared[l] for l in group]
+            responders = _Prepared(
+                torch.cat([p.ov_norm2 for p in later]), torch.cat([p.qk_norm2 for p in later]), None,
+                {kind: torch.cat([p.responder_z[kind] for p in later]) for kind in KINDS},
+                {kind: (torch.cat([p.bases[kind][0] for p in later]), None) for kind in KINDS})
+            scores, kernels = _pair_scores(prepared[lU], responders)  # {kind: [H, len(group) H]}
+            sl = slice(group[0], group[-1] + 1)
             for kind in KINDS:
-                arrays[f"{kind}_composition"][lU, :, lR, :] = scores[kind].numpy()
-                arrays[f"projection_kernel_{kind}"][lU, :, lR, :] = kernels[kind].numpy()
-                dims = np.outer(arrays["write_dim"][lU], arrays[f"read_dim_{kind}"][lR])  # [H, H]
-                arrays[f"kernel_random_mean_{kind}"][lU, :, lR, :] = dims / d
+                arrays[f"{kind}_composition"][lU, :, sl, :] = scores[kind].numpy().reshape(H, len(group), H)
+                arrays[f"projection_kernel_{kind}"][lU, :, sl, :] = kernels[kind].numpy().reshape(H, len(group), H)
+                dims = np.einsum("a,lb->alb", arrays["write_dim"][lU], arrays[f"read_dim_{kind}"][sl])  # [H, n, H]
+                arrays[f"kernel_random_mean_{kind}"][lU, :, sl, :] = dims / d
     base = composition_baseline(d, w.d_head, draws, seed)
     attrs = {"baseline_draws": int(draws), "baseline_seed": int(seed), "d_model": d, "d_head": w.d_head}
     for kind in KINDS:

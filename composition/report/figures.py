@@ -125,8 +125,11 @@ def _frame(ax, axes: Axes, title: str) -> None:
     _head_ticks(ax, "x", axes.responder_layers, H)
     _head_ticks(ax, "y", axes.writer_layers, H)
     _layer_lines(ax, len(axes.writer_layers), len(axes.responder_layers), H)
-    ax.set_xlabel("responder head (layer.head)")
-    ax.set_ylabel("writer head (layer.head)")
+    every = lambda layers: len(layers) * H <= LABEL_ALL_HEADS  # noqa: E731
+    ax.set_xlabel("responder head (layer.head)" if every(axes.responder_layers)
+                  else f"responder head (by layer; minor ticks mark heads 0-{H - 1})")
+    ax.set_ylabel("writer head (layer.head)" if every(axes.writer_layers)
+                  else f"writer head (by layer; minor ticks mark heads 0-{H - 1})")
     ax.set_title(title, loc="left")
 
 
