@@ -223,15 +223,23 @@ def heads(checkpoint, out, into, table, position, ks, fdr, min_effect, baseline_
     if (out is None) == (into is None):
         raise CompositionError("give exactly one of --out FILE.h5 (a heads file) and --into SCAN.h5.")
     start = time.monotonic()
+    show = sys.stderr.isatty()
+
+    def progress(done, total):
+        if show:
+            click.echo(f"\r  heads {done}/{total}  {time.monotonic() - start:6.1f} s", err=True, nl=False)
+
     w = load_weights(checkpoint)
     if into is not None:
-        path = add_to_scan(into, w, draws=baseline_draws)
+        path = add_to_scan(into, w, draws=baseline_draws, progress=progress)
     else:
         options = TableOptions(table, _position(position))
         if not 0 < fdr < 1 or not 0 <= min_effect < 0.5:
             raise CompositionError("--fdr must lie in (0, 1) and --min-effect in [0, 0.5).")
         path = write_heads_file(out, w, token_table(w, options), options, _ks(ks), fdr, min_effect,
-                                baseline_draws, overwrite=overwrite)
+                                baseline_draws, overwrite=overwrite, progress=progress)
+    if show:
+        click.echo("", err=True)
     data = load_heads(path)
     click.echo(f"head profiles of {w.n_layers * w.n_heads} heads and model-space scores in "
                f"{time.monotonic() - start:.1f} s; wrote {path}")
