@@ -213,8 +213,10 @@ def demo(directory, quiet):
               help="Smallest |OV mean percentile - 0.5| that earns a head label (with --out).")
 @click.option("--baseline-draws", type=int, default=200, show_default=True,
               help="Gaussian draws for the composition-score baseline.")
+@click.option("--all-heads", is_flag=True,
+              help="With --into: profile every head, not only the heads of the scanned pairs.")
 @click.option("--overwrite", is_flag=True, help="Replace an existing heads file.")
-def heads(checkpoint, out, into, table, position, ks, fdr, min_effect, baseline_draws, overwrite):
+def heads(checkpoint, out, into, table, position, ks, fdr, min_effect, baseline_draws, all_heads, overwrite):
     """Head profiles (copying / suppressing) and model-space scores of every pair of CHECKPOINT."""
     from .checkpoints import load_weights
     from .heads import add_to_scan, load_heads, write_heads_file
@@ -231,7 +233,7 @@ def heads(checkpoint, out, into, table, position, ks, fdr, min_effect, baseline_
 
     w = load_weights(checkpoint)
     if into is not None:
-        path = add_to_scan(into, w, draws=baseline_draws, progress=progress)
+        path = add_to_scan(into, w, draws=baseline_draws, progress=progress, all_heads=all_heads)
     else:
         options = TableOptions(table, _position(position))
         if not 0 < fdr < 1 or not 0 <= min_effect < 0.5:
@@ -241,7 +243,8 @@ def heads(checkpoint, out, into, table, position, ks, fdr, min_effect, baseline_
     if show:
         click.echo("", err=True)
     data = load_heads(path)
-    click.echo(f"head profiles of {w.n_layers * w.n_heads} heads and model-space scores in "
+    profiled = int((data.heads["label"] != LABEL_NOT_COMPUTED).sum())
+    click.echo(f"head profiles of {profiled} heads and model-space scores of every pair in "
                f"{time.monotonic() - start:.1f} s; wrote {path}")
     _print_heads(data)
 
@@ -250,8 +253,10 @@ def _print_heads(data) -> None:
     from .heads import HEAD_LABEL_WORDS, KINDS
 
     hp, a = data.heads, data.heads_attrs
-    labelled = [tuple(int(v) for v in ix) for ix in np.argwhere(hp["label"] != 0)]
-    click.echo(f"labelled heads (FDR {a['fdr']}, |OV mean percentile - 0.5| >= {a['min_effect']}): {len(labelled)}")
+    labelled = [tuple(int(v) for v in ix) for ix in np.argwhere(np.isin(hp["label"], (1, -1)))]
+    computed = int((hp["label"] != LABEL_NOT_COMPUTED).sum())
+    click.echo(f"labelled heads (FDR {a['fdr']}, |OV mean percentile - 0.5| >= {a['min_effect']}): "
+               f"{len(labelled)} of {computed} profiled")
     if labelled:
         click.echo(f"  {'head':>5}  {'OV label':<11} {'mean pct':>8} {'q-value':>9} {'copying score':>13}")
     for l, h in sorted(labelled, key=lambda i: -abs(hp["mean_percentile"][i] - 0.5)):

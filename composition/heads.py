@@ -87,13 +87,16 @@ def eigen_copying_score(A: torch.Tensor, B: torch.Tensor) -> float:
 
 def head_profiles(w: Weights, table: torch.Tensor, ks=DEFAULT_K, fdr: float = DEFAULT_FDR,
                   min_effect: float = DEFAULT_MIN_EFFECT, block_rows: int = 256,
-                  progress: Callable[[int, int], None] | None = None) -> dict[str, np.ndarray]:
-    """OV diagonal statistics, eigenvalue copying score and label of every head.
+                  progress: Callable[[int, int], None] | None = None,
+                  heads: list[tuple[int, int]] | None = None) -> dict[str, np.ndarray]:
+    """OV diagonal statistics, eigenvalue copying score and label of every head (or of ``heads``).
 
-    # table [V, d] -> {name: [L, H, ...]}; label +1 copying, -1 suppressing, 0 neutral
+    # table [V, d] -> {name: [L, H, ...]}; label +1 copying, -1 suppressing, 0 neutral,
+    LABEL_NOT_COMPUTED for heads left out. Benjamini-Hochberg runs over the computed heads.
     """
     L, H = w.n_layers, w.n_heads
     ks = tuple(int(k) for k in ks)
+    chosen = sorted(set(heads)) if heads is not None else [(l, h) for l in range(L) for h in range(H)]
     n_rows = min(w.vocab_size, w.W_U.shape[1])  # diagonal exists for t < min(V_in, V_out)
     n_keys = w.W_U.shape[1]
     out = {
@@ -103,12 +106,15 @@ def head_profiles(w: Weights, table: torch.Tensor, ks=DEFAULT_K, fdr: float = DE
         "histogram": np.zeros((L, H, HIST_BINS), np.int64),
         "rows_evaluated": np.zeros((L, H), np.int64),
         "p_value": np.full((L, H), np.nan),
+        "q_value": np.full((L, H), np.nan),
         "eigen_copying_score": np.full((L, H), np.nan),
+        "label": np.full((L, H), LABEL_NOT_COMPUTED, np.int8),
     }
     rows = torch.arange(n_rows)
-    for layer in range(L):
+    done = 0
+    for layer in sorted({l for l, _ in chosen}):
         A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
-        for h in range(H):
+        for h in sorted(h for l, h in chosen if l == layer):
             ranks = diagonal_midranks(A[h, :n_rows], B[h], rows=rows, block_rows=block_rows).numpy()  # [V]
             s = summarise(ranks, n_keys, ks)
             out["top_share"][layer, h] = s.top_share
@@ -118,11 +124,13 @@ def head_profiles(w: Weights, table: torch.Tensor, ks=DEFAULT_K, fdr: float = DE
             out["rows_evaluated"][layer, h] = s.rows
             out["p_value"][layer, h] = s.p_value
             out["eigen_copying_score"][layer, h] = eigen_copying_score(A[h, :n_rows], B[h, :n_rows])
+            done += 1
             if progress:
-                progress(layer * H + h + 1, L * H)
-    lab, q = labels(out["mean_percentile"].ravel(), out["p_value"].ravel(), fdr, min_effect)
-    out["label"] = lab.reshape(L, H)
-    out["q_value"] = q.reshape(L, H)
+                progress(done, len(chosen))
+    sel = tuple(np.array(chosen).T) if chosen else (np.zeros(0, int), np.zeros(0, int))
+    lab, q = labels(out["mean_percentile"][sel], out["p_value"][sel], fdr, min_effect)
+    out["label"][sel] = lab
+    out["q_value"][sel] = q
     return out
 
 
@@ -400,19 +408,22 @@ def head_attrs(w: Weights, options: TableOptions, ks, fdr: float, min_effect: fl
         "keys_per_row": int(w.W_U.shape[1]),
         "histogram_bins": HIST_BINS,
         "weights_fingerprint": fingerprint or w.fingerprint(),
-        "label_meaning": "+1 copying, -1 suppressing, 0 neutral (OV token matrix diagonal, METHODS 5)",
+        "label_meaning": "+1 copying, -1 suppressing, 0 neutral, -128 not computed (OV token matrix diagonal, METHODS 5)",
         "label_fill": LABEL_NOT_COMPUTED,
     }
 
 
 def compute_head_data(w: Weights, table: torch.Tensor, options: TableOptions, ks=DEFAULT_K,
                       fdr: float = DEFAULT_FDR, min_effect: float = DEFAULT_MIN_EFFECT,
-                      draws: int = BASELINE_DRAWS, progress=None, fingerprint: str | None = None
-                      ) -> tuple[dict, dict, dict, dict]:
-    """Everything of ``/heads`` and ``/model_space``: (heads, heads_attrs, model_space, model_space_attrs)."""
-    heads = head_profiles(w, table, ks, fdr, min_effect, progress=progress)
+                      draws: int = BASELINE_DRAWS, progress=None, fingerprint: str | None = None,
+                      heads: list[tuple[int, int]] | None = None) -> tuple[dict, dict, dict, dict]:
+    """Everything of ``/heads`` and ``/model_space``: (heads, heads_attrs, model_space, model_space_attrs).
+
+    Head profiles for ``heads`` (default every head); model-space scores for every pair.
+    """
+    profiles = head_profiles(w, table, ks, fdr, min_effect, progress=progress, heads=heads)
     ms, ms_attrs = model_space_scores(w, draws)
-    return heads, head_attrs(w, options, ks, fdr, min_effect, fingerprint), ms, ms_attrs
+    return profiles, head_attrs(w, options, ks, fdr, min_effect, fingerprint), ms, ms_attrs
 
 
 def _write_groups(f, heads, heads_attrs, ms, ms_attrs) -> None:
@@ -430,14 +441,16 @@ def _write_groups(f, heads, heads_attrs, ms, ms_attrs) -> None:
 
 def write_heads_file(path: str | os.PathLike, w: Weights, table: torch.Tensor, options: TableOptions,
                      ks=DEFAULT_K, fdr: float = DEFAULT_FDR, min_effect: float = DEFAULT_MIN_EFFECT,
-                     draws: int = BASELINE_DRAWS, overwrite: bool = False, progress=None) -> Path:
-    """Compute head profiles and model-space scores and write them as a separate heads file."""
+                     draws: int = BASELINE_DRAWS, overwrite: bool = False, progress=None,
+                     heads: list[tuple[int, int]] | None = None) -> Path:
+    """Compute head profiles (of ``heads``, default all) and model-space scores and write
+    them as a separate heads file."""
     import h5py
 
     path = Path(path)
     if path.exists() and not overwrite:
         raise CompositionError(f"{path} exists already; pass --overwrite to replace it.")
-    data = compute_head_data(w, table, options, ks, fdr, min_effect, draws, progress)
+    data = compute_head_data(w, table, options, ks, fdr, min_effect, draws, progress, heads=heads)
     with _atomic(path, copy=False) as tmp:
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = HEADS_FORMAT
@@ -449,12 +462,14 @@ def write_heads_file(path: str | os.PathLike, w: Weights, table: torch.Tensor, o
 
 
 def add_to_scan(scan_path: str | os.PathLike, w: Weights, table: torch.Tensor | None = None,
-                draws: int = BASELINE_DRAWS, progress=None) -> Path:
+                draws: int = BASELINE_DRAWS, progress=None, all_heads: bool = False) -> Path:
     """Add (or replace) the ``/heads`` and ``/model_space`` groups of a finished scan file.
 
-    Uses the scan's own token table, k, FDR and effect threshold, and refuses weights whose
-    fingerprint differs from the scan's. ``table`` may pass the already-built token table.
-    The file is rewritten atomically (copy, add, rename).
+    Head profiles cover the heads of the scanned pairs (writers and responders; every head
+    with ``all_heads``), so a restricted quick scan stays quick; model-space scores cover
+    every pair. Uses the scan's own token table, k, FDR and effect threshold, and refuses
+    weights whose fingerprint differs from the scan's. ``table`` may pass the already-built
+    token table. The file is rewritten atomically (copy, add, rename).
     """
     import h5py
 
@@ -470,8 +485,10 @@ def add_to_scan(scan_path: str | os.PathLike, w: Weights, table: torch.Tensor | 
     options = TableOptions(a.get("table", "attn0-mlp0"), position)
     if table is None:
         table = token_table(w, options)  # [V, d]
+    idx = np.argwhere(scan.done)  # [P, 4]
+    heads = None if all_heads else sorted({(int(r[0]), int(r[1])) for r in idx} | {(int(r[2]), int(r[3])) for r in idx})
     data = compute_head_data(w, table, options, tuple(a.get("k", DEFAULT_K)), float(a.get("fdr", DEFAULT_FDR)),
-                             float(a.get("min_effect", DEFAULT_MIN_EFFECT)), draws, progress, fingerprint)
+                             float(a.get("min_effect", DEFAULT_MIN_EFFECT)), draws, progress, fingerprint, heads)
     path = Path(scan_path)
     with _atomic(path, copy=True) as tmp:
         with h5py.File(tmp, "a") as f:

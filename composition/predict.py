@@ -37,7 +37,7 @@ def compensation(pair_labels: np.ndarray, head_labels: np.ndarray) -> dict[str, 
     # pair_labels [L, H, L, H] int8 (+1/-1/0, LABEL_NOT_COMPUTED), head_labels [L, H] int8
     # -> {"s_writer", "s_response", "s_responder", "prediction"}: [L, H, L, H] int8
     ``prediction`` is -1 compensating, +1 reinforcing, 0 none, LABEL_NOT_COMPUTED where the
-    pair was not scanned.
+    pair was not scanned or a head has no profile.
     """
     pair_labels = np.asarray(pair_labels)
     head_labels = np.asarray(head_labels)
@@ -45,8 +45,9 @@ def compensation(pair_labels: np.ndarray, head_labels: np.ndarray) -> dict[str, 
     s_writer = np.broadcast_to(head_labels[:, :, None, None], (L, H, L, H)).astype(np.int8)
     s_responder = np.broadcast_to(head_labels[None, None, :, :], (L, H, L, H)).astype(np.int8)
     s_response = pair_labels.astype(np.int8)
-    computed = s_response != LABEL_NOT_COMPUTED
-    product = s_writer.astype(np.int64) * np.where(computed, s_response, 0) * s_responder
+    computed = ((s_response != LABEL_NOT_COMPUTED) & (s_writer != LABEL_NOT_COMPUTED)
+                & (s_responder != LABEL_NOT_COMPUTED))
+    product = np.where(computed, s_writer.astype(np.int64) * s_response * s_responder, 0)
     prediction = np.sign(product).astype(np.int8)
     prediction[~computed] = LABEL_NOT_COMPUTED
     return {"s_writer": s_writer, "s_response": s_response, "s_responder": s_responder,
@@ -123,7 +124,7 @@ def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
                     **{f"top_share_{k}": float(scan.top_share[i][j]) for j, k in enumerate(ks)},
                     **{f"bottom_share_{k}": float(scan.bottom_share[i][j]) for j, k in enumerate(ks)},
                     "q_value": float(scan.q_value[i]),
-                    "writer_ov": HEAD_LABEL_WORDS[int(head_label[lU, hU])],
+                    "writer_ov": HEAD_LABEL_WORDS.get(int(head_label[lU, hU]), "not computed"),
                     "prediction": PREDICTION_WORDS[int(comp["prediction"][i])],
                     "q_composition": float(ms["q_composition"][i]),
                     "q_composition_z": float((ms["q_composition"][i] - q_mean) / q_sd),

@@ -277,10 +277,28 @@ def test_demo_head_labels_recover_the_planted_heads():
     data = load_heads(demo_scan() / "scan.h5")
     assert data is not None, "run_scan did not add /heads to the scan file"
     label = data.heads["label"]
-    found = {tuple(int(v) for v in ix): int(label[tuple(ix)]) for ix in np.argwhere(label != 0)}
+    found = {tuple(int(v) for v in ix): int(label[tuple(ix)]) for ix in np.argwhere(np.isin(label, (1, -1)))}
     assert found == PLANTED_HEADS
     for head, sign in PLANTED_HEADS.items():
         assert np.sign(data.heads["eigen_copying_score"][head]) == sign
+
+
+def test_restricted_scan_profiles_only_its_heads():
+    """A scan restricted to some writers and responders profiles exactly those heads (the
+    others hold the not-computed label) while the model-space scores cover every pair.
+
+    Common practice, no source (the restricted quick scan of USERS.md story 2 stays quick).
+    """
+    from tests._issue6_fixtures import planted_selection
+    from composition.scan import parse_heads
+
+    data = load_heads(demo_scan() / "scan.h5")
+    writers, responders = planted_selection()
+    L, H = data.heads["label"].shape
+    expect = set(parse_heads(writers, L, H, "w")) | set(parse_heads(responders, L, H, "r"))
+    assert {tuple(int(v) for v in ix) for ix in np.argwhere(data.heads["label"] != -128)} == expect
+    assert np.isnan(data.heads["mean_percentile"][0]).all()
+    assert np.isfinite(data.model_space["q_composition"][0, :, 1:, :]).all()
 
 
 def test_demo_planted_pairs_compose_in_model_space():

@@ -70,6 +70,8 @@ def test_compensation_follows_the_sign_of_three_labels():
     pairs[0, 0, 2, 1] = 0  # neutral response -> none
     pred = compensation(pairs, heads)["prediction"]
     assert pred[0, 0, 1, 1] == -1 and pred[1, 0, 2, 1] == -1
+    heads[2, 1] = -128  # a responder without a profile predicts nothing
+    assert compensation(pairs, heads)["prediction"][1, 0, 2, 1] == -128
     assert pred[0, 0, 1, 0] == 1 and pred[0, 1, 1, 0] == 1 and pred[0, 1, 1, 1] == 1
     assert pred[1, 0, 2, 0] == 0 and pred[0, 0, 2, 1] == 0
     assert pred[2, 0, 0, 0] == -128

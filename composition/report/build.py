@@ -253,6 +253,7 @@ tbody tr:nth-child(even) { background: #faf8f3; }
 .chip.lowering, .chip.suppressing { background: var(--teal); }
 .chip.compensating { background: var(--violet); }
 .chip.reinforcing { background: var(--gold); color: #222; }
+.chip.not { background: #fff; color: #777; border: 1px dashed var(--rule); }
 .chip.neutral, .chip.none { background: var(--cream); color: #444; border: 1px solid var(--rule); }
 code, .mono { font-family: "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: 12.5px; }
 details { margin: 8px 0; } summary { cursor: pointer; color: var(--teal); }
@@ -350,6 +351,7 @@ def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, 
         (int(done.sum()), "pairs scanned"),
         (int((lab == 1).sum()), "attention-raising pairs"),
         (int((lab == -1).sum()), "attention-lowering pairs"),
+        (int((hl != LABEL_NOT_COMPUTED).sum()), "heads profiled"),
         (int((hl == 1).sum()), "copying heads"),
         (int((hl == -1).sum()), "suppressing heads"),
         (int((pred == -1).sum()), "compensating pairs"),
@@ -405,14 +407,14 @@ def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, 
     L, H = hl.shape
 
     def head_row(l, h):
-        return [f'<span class="mono">{l}.{h}</span>', _chip(HEAD_LABEL_WORDS[int(hl[l, h])]),
+        return [f'<span class="mono">{l}.{h}</span>', _chip(HEAD_LABEL_WORDS.get(int(hl[l, h]), "not computed")),
                 _fmt(hp["mean_percentile"][l, h]), _fmt(hp["top_share"][l, h][0], 4),
                 _fmt(hp["bottom_share"][l, h][0], 4), _fmt_q(hp["q_value"][l, h]),
                 _fmt(hp["eigen_copying_score"][l, h])]
 
     head_header = ["head", "OV label", "OV mean pct", f"top-{k0} share", f"bottom-{k0} share", "q-value",
                    "copying score"]
-    labelled_heads = [head_row(l, h) for l in range(L) for h in range(H) if hl[l, h] != 0]
+    labelled_heads = [head_row(l, h) for l in range(L) for h in range(H) if hl[l, h] in (1, -1)]
     heads_html = (_table(head_header, labelled_heads, text_cols=2) if labelled_heads
                   else '<p class="muted">No head is labelled copying or suppressing.</p>')
     heads_html += (f"<details><summary>All {L * H} heads</summary>"

@@ -22,6 +22,7 @@ CATEGORY_COLOURS = {
     "attention-raising": "#b9582a", "attention-lowering": "#2f7287", "neutral": NULL_COLOUR,
     "copying": "#b9582a", "suppressing": "#2f7287",
     "compensating": "#6a4c93", "reinforcing": "#d9a21b", "none": NULL_COLOUR,
+    "not computed": "#ffffff",
 }
 EMPTY_FACE = "#ffffff"
 HATCH_COLOUR = "#cfc8ba"
@@ -263,7 +264,7 @@ def head_bars(copying_score: np.ndarray, ov_mean_percentile: np.ndarray, ov_labe
     L, H = copying_score.shape
     x = np.array([l * (H + 1) + h for l in range(L) for h in range(H)], dtype=float)  # a gap between layers
     words = {1: "copying", -1: "suppressing", 0: "neutral"}
-    colours = [CATEGORY_COLOURS[words.get(int(v), "neutral")] for v in ov_label.ravel()]
+    colours = [CATEGORY_COLOURS[words.get(int(v), "not computed")] for v in ov_label.ravel()]
     width = float(np.clip(0.16 * L * (H + 1), 7.0, 18.0))
     fig, (a1, a2) = plt.subplots(2, 1, figsize=(width, 5.6), sharex=True)
     for ax, values, null, lim, ylabel in (
@@ -287,9 +288,12 @@ def head_bars(copying_score: np.ndarray, ov_mean_percentile: np.ndarray, ov_labe
     a2.set_xlabel("head (layer.head)")
     fig.suptitle("Each head's own write: copying or suppressing the attended token", x=0.01, ha="left",
                  fontsize=11, fontweight="bold")
-    a1.legend(handles=[Patch(facecolor=CATEGORY_COLOURS[w], edgecolor=GRID_COLOUR, lw=0.4, label=f"OV label: {w}")
-                       for w in ("copying", "suppressing", "neutral")],
-              loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=3, fontsize=7, frameon=False)
+    missing = not bool(np.isin(ov_label, (1, 0, -1)).all())
+    shown = ["copying", "suppressing", "neutral"] + (["not computed"] if missing else [])
+    a1.legend(handles=[Patch(facecolor=CATEGORY_COLOURS[w], edgecolor=GRID_COLOUR, lw=0.4,
+                             label=f"OV label: {w}" if w != "not computed" else "no profile (head not in the scan)")
+                       for w in shown],
+              loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=len(shown), fontsize=7, frameon=False)
     fig.tight_layout()
     return _save(fig, out_dir, stem)
 
