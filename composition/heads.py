@@ -23,8 +23,10 @@ principal angles (Hamm & Lee 2008, "Grassmann discriminant analysis"; applied to
 attention heads by Yamagiwa, Takase & Shimodaira 2026); for uniformly random subspaces of
 dimensions ``a`` and ``b`` in ``R^d`` its mean is ``ab/d``.
 
-Every Frobenius norm is computed from ``[dh, dh]`` Gram matrices, never from a ``[d, d]``
-product: for ``Z = X M Y^T``, ``|Z|_F^2 = sum((X^T X) M * M (Y^T Y))``.
+No ``[d, d]`` matrix is formed: for ``Z = X M Y^T`` with Gram square roots
+``S_X S_X^T = X^T X`` and ``S_Y S_Y^T = Y^T Y``, ``|Z|_F^2 = |S_X^T M S_Y|_F^2``, and with the
+middle ``M = W_O^U Y'`` this is ``|(W_O^U^T S_X)^T (Y' S_Y)|_F^2``: one ``[dh, d] x [d, dh]``
+product per pair, batched over heads, as for the projection kernel.
 
 Storage: the groups ``/heads`` (datasets ``[L, H, ...]``) and ``/model_space`` (datasets
 ``[L, H, L, H]``) of a scan file (:func:`add_to_scan`) or of a separate heads file
@@ -327,9 +329,9 @@ def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASE
     """Composition scores and projection kernels of every pair, with their baselines.
 
     # -> ({name: [L, H, L, H] or [L, H]}, attrs); pairs with responder layer <= writer
-    layer hold NaN. Per writer layer, later responder layers are handled in one product per
-    kind and group of later layers. Memory: about eight ``[H, d, dh]`` float64
-    tensors per layer (GPT-2 small: 0.45 GB).
+    layer hold NaN. Per writer layer, later responder layers are handled in groups of up to
+    64 heads, one batched product per kind and group. Memory: about eight ``[H, d, dh]``
+    float64 tensors per layer (GPT-2 small: 0.45 GB).
     """
     L, H, d = w.n_layers, w.n_heads, w.d_model
     shape = (L, H, L, H)
