@@ -289,6 +289,12 @@ def demo(directory, quiet):
     for name, (u, r, _, _, qk, ov) in PLANTED_CIRCUITS.items():
         click.echo(f"  {name:<11} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: "
                    f"{_LABEL_WORDS[qk]}, responder {'copies' if ov > 0 else 'suppresses'}")
+    from .predict import shortlist as make_shortlist
+    from .report import load_report_inputs, write_report
+
+    index = write_report(root / "demo-scan.h5", root / "demo-report")
+    click.echo(f"report: {index}")
+    _print_shortlist(make_shortlist(*load_report_inputs(root / "demo-scan.h5")))
     _demo_sides(root, model, quiet)
 
 
@@ -325,3 +331,227 @@ def _demo_sides(root: Path, model, quiet) -> None:
     for name, (u, r, what) in SIDE_CIRCUITS.items():
         click.echo(f"  {name:<15} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: {what}")
     click.echo(f"note: {CAUTION}")
+
+
+# ---------------------------------------------------------------------------
+# Head profiles, shortlist, report, one pair (composition/heads.py, predict.py, report/)
+# ---------------------------------------------------------------------------
+
+@main.command()
+@click.argument("checkpoint", type=click.Path())
+@click.option("--out", "-o", type=click.Path(), help="Write a separate heads file (HDF5).")
+@click.option("--into", "into", type=click.Path(), metavar="SCAN.h5",
+              help="Add /heads and /model_space to this scan file instead (uses the scan's table, k and thresholds).")
+@click.option("--table", type=click.Choice(TABLES), default="attn0-mlp0", show_default=True,
+              help="Token table for the OV token matrices (with --out).")
+@click.option("--position", default="none", show_default=True, metavar="none|mean|N",
+              help="Position embedding added to the token table (with --out).")
+@click.option("--k", "ks", default="1,5,10", show_default=True, metavar="K1,K2,..", help="The k of the shares (with --out).")
+@click.option("--fdr", type=float, default=DEFAULT_FDR, show_default=True,
+              help="False discovery rate for head labels, Benjamini-Hochberg over all heads (with --out).")
+@click.option("--min-effect", type=float, default=DEFAULT_MIN_EFFECT, show_default=True,
+              help="Smallest |OV mean percentile - 0.5| that earns a head label (with --out).")
+@click.option("--baseline-draws", type=int, default=200, show_default=True,
+              help="Gaussian draws for the composition-score baseline.")
+@click.option("--all-heads", is_flag=True,
+              help="With --into: profile every head, not only the heads of the scanned pairs.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing heads file.")
+def heads(checkpoint, out, into, table, position, ks, fdr, min_effect, baseline_draws, all_heads, overwrite):
+    """Head profiles (copying / suppressing) and model-space scores of every pair of CHECKPOINT."""
+    from .checkpoints import load_weights
+    from .heads import add_to_scan, load_heads, write_heads_file
+    from .tables import TableOptions, token_table
+
+    if (out is None) == (into is None):
+        raise CompositionError("give exactly one of --out FILE.h5 (a heads file) and --into SCAN.h5.")
+    start = time.monotonic()
+    show = sys.stderr.isatty()
+
+    def progress(done, total):
+        if show:
+            click.echo(f"\r  heads {done}/{total}  {time.monotonic() - start:6.1f} s", err=True, nl=False)
+
+    w = load_weights(checkpoint)
+    if into is not None:
+        path = add_to_scan(into, w, draws=baseline_draws, progress=progress, all_heads=all_heads)
+    else:
+        options = TableOptions(table, _position(position))
+        if not 0 < fdr < 1 or not 0 <= min_effect < 0.5:
+            raise CompositionError("--fdr must lie in (0, 1) and --min-effect in [0, 0.5).")
+        path = write_heads_file(out, w, token_table(w, options), options, _ks(ks), fdr, min_effect,
+                                baseline_draws, overwrite=overwrite, progress=progress)
+    if show:
+        click.echo("", err=True)
+    data = load_heads(path)
+    profiled = int((data.heads["label"] != LABEL_NOT_COMPUTED).sum())
+    click.echo(f"head profiles of {profiled} heads and model-space scores of every pair in "
+               f"{time.monotonic() - start:.1f} s; wrote {path}")
+    _print_heads(data)
+
+
+def _print_heads(data) -> None:
+    from .heads import HEAD_LABEL_WORDS, KINDS
+
+    hp, a = data.heads, data.heads_attrs
+    labelled = [tuple(int(v) for v in ix) for ix in np.argwhere(np.isin(hp["label"], (1, -1)))]
+    computed = int((hp["label"] != LABEL_NOT_COMPUTED).sum())
+    click.echo(f"labelled heads (FDR {a['fdr']}, |OV mean percentile - 0.5| >= {a['min_effect']}): "
+               f"{len(labelled)} of {computed} profiled")
+    if labelled:
+        click.echo(f"  {'head':>5}  {'OV label':<11} {'mean pct':>8} {'q-value':>9} {'copying score':>13}")
+    for l, h in sorted(labelled, key=lambda i: -abs(hp["mean_percentile"][i] - 0.5)):
+        click.echo(f"  {l:>3}.{h:<1}  {HEAD_LABEL_WORDS[int(hp['label'][l, h])]:<11} {hp['mean_percentile'][l, h]:8.3f} "
+                   f"{hp['q_value'][l, h]:9.1e} {hp['eigen_copying_score'][l, h]:13.3f}")
+    draws = data.model_space_attrs["baseline_draws"]
+    for kind in KINDS:
+        mean, sd = data.baseline(kind)
+        click.echo(f"{kind.upper()}-composition baseline: {mean:.4f} +- {sd:.4f} (Gaussian factors, {draws} draws)")
+    click.echo(f"note: {CAUTION}")
+
+
+@main.command()
+@click.argument("scan_file", type=click.Path())
+@click.option("--heads", "heads_file", type=click.Path(), help="Heads file, if the scan file has no /heads group.")
+@click.option("--csv", "csv_file", type=click.Path(), help="Also write the shortlist as CSV, one row per (head, writer).")
+def shortlist(scan_file, heads_file, csv_file):
+    """Candidate suppressor and back-up heads of a scan, with the writers each responds to."""
+    from .predict import shortlist as make_shortlist
+    from .predict import shortlist_rows
+    from .report import load_report_inputs
+    from .report.csvfiles import write_csv
+
+    scan_data, head_data = load_report_inputs(scan_file, heads_file)
+    candidates = make_shortlist(scan_data, head_data)
+    _print_shortlist(candidates)
+    if csv_file:
+        try:
+            write_csv(csv_file, shortlist_rows(candidates))
+        except OSError as exc:
+            raise CompositionError(f"cannot write {csv_file} ({exc.strerror}).") from None
+        click.echo(f"wrote {csv_file}")
+
+
+def _print_shortlist(candidates) -> None:
+    click.echo(f"shortlist: {sum(c.kind == 'suppressor' for c in candidates)} candidate suppressor heads "
+               f"(suppressing, attention-raising), {sum(c.kind == 'back-up' for c in candidates)} candidate "
+               f"back-up heads (copying, attention-lowering)")
+    if not candidates:
+        return
+    click.echo(f"  {'#':>2} {'kind':<10} {'head':>5} {'OV pct':>6} {'OV q':>8} {'copy':>6}  "
+               f"{'writer':>6} {'pair pct':>8} {'pair q':>8} {'Q-comp z':>8}  prediction")
+    for rank, c in enumerate(candidates, 1):
+        for j, r in enumerate(c.writers):
+            head = (f"{rank:>2} {c.kind:<10} {c.label:>5} {c.ov_mean_percentile:6.3f} {c.ov_q_value:8.1e} "
+                    f"{c.copying_score:6.2f}" if j == 0 else " " * 43)
+            click.echo(f"  {head}  {r['writer']:>6} {r['mean_percentile']:8.3f} {r['q_value']:8.1e} "
+                       f"{r['q_composition_z']:8.1f}  {r['prediction']}")
+
+
+@main.command()
+@click.argument("scan_file", type=click.Path())
+@click.option("--out", "-o", required=True, type=click.Path(), help="Report directory to write.")
+@click.option("--heads", "heads_file", type=click.Path(), help="Heads file, if the scan file has no /heads group.")
+def report(scan_file, out, heads_file):
+    """Heatmaps, per-head bars, compensation map, CSV tables and index.html of a scan."""
+    from .report import write_report
+
+    index = write_report(scan_file, out, heads_file)
+    click.echo(f"wrote the report {index}")
+
+
+@main.command()
+@click.argument("checkpoint", type=click.Path())
+@click.argument("writer")
+@click.argument("responder")
+@click.option("--tokens", metavar="T1,T2,..", help="Tokens to place: vocabulary pieces or their text, or ids.")
+@click.option("--top", type=int, default=15, show_default=True, help="How many highest and lowest tokens to list.")
+@click.option("--table", type=click.Choice(TABLES), default="attn0-mlp0", show_default=True,
+              help="Token table standing for the residual stream at a token.")
+@click.option("--position", default="none", show_default=True, metavar="none|mean|N",
+              help="Position embedding added to the token table.")
+@click.option("--orientation", type=click.Choice(ORIENTATIONS), default="row", show_default=True,
+              help="Rank the diagonal within its row or its column.")
+@click.option("--k", "ks", default="1,5,10", show_default=True, metavar="K1,K2,..", help="The k of the shares.")
+@click.option("--scan", "scan_file", type=click.Path(), help="Scan file with this pair: print its label and prediction.")
+@click.option("--csv", "csv_file", type=click.Path(), help="Write every token's rank and percentile as CSV.")
+@click.option("--figure", "figure_file", type=click.Path(), help="Write the percentile histogram (.png or .svg).")
+def pair(checkpoint, writer, responder, tokens, top, table, position, orientation, ks, scan_file, csv_file,
+         figure_file):
+    """One pair in depth: WRITER and RESPONDER are head labels layer.head, e.g. 1.0 2.3."""
+    from .checkpoints import load_weights
+    from .report.pair import pair_detail, parse_head, resolve_tokens
+    from .report.vocabulary import checkpoint_directory, load_vocabulary
+    from .tables import TableOptions
+
+    u, r = parse_head(writer, "WRITER"), parse_head(responder, "RESPONDER")
+    w = load_weights(checkpoint)
+    vocab = load_vocabulary(checkpoint_directory(checkpoint), w.vocab_size)
+    chosen = resolve_tokens([t for t in (tokens or "").split(",") if t != ""], vocab, w.vocab_size)
+    detail = pair_detail(w, u, r, TableOptions(table, _position(position)), orientation, _ks(ks), vocab)
+    s = detail.stats
+    click.echo(f"pair {writer} -> {responder}: {s.rows} rows, {detail.n_keys} keys per row, "
+               f"{orientation} orientation, token table {table}; tokens "
+               f"{'from ' + vocab.source if vocab else 'as ids (no tokenizer.json)'}")
+    shares = "  ".join(f"top-{k} {t:.4f} / bottom-{k} {b:.4f} (null {k / detail.n_keys:.4f})"
+                       for k, t, b in zip(_ks(ks), s.top_share, s.bottom_share))
+    click.echo(f"mean percentile {s.mean_percentile:.4f} (null 0.5), p = {s.p_value:.1e} for this pair alone")
+    click.echo(f"shares: {shares}")
+    for name, hw in (("writer", detail.writer_write), ("responder", detail.responder_write)):
+        click.echo(f"{name} OV token matrix: diagonal mean percentile {hw.mean_percentile:.3f} "
+                   f"(p = {hw.p_value:.1e} alone), eigenvalue copying score {hw.copying_score:.3f}")
+    if scan_file:
+        from .predict import pair_prediction
+        from .report import load_report_inputs
+
+        scan_data, head_data = load_report_inputs(scan_file)
+        pp = pair_prediction(scan_data, head_data, u, r)
+        click.echo(f"in {scan_file}: {pp['response']} (q = {pp['q_value']:.1e}); signs s_U {pp['s_writer']:+d}, "
+                   f"s_QK {pp['s_response']:+d}, s_R {pp['s_responder']:+d} -> {pp['prediction']}")
+    click.echo("percentile histogram (fraction of rows per bin; | marks the uniform null):")
+    for line in _text_histogram(s.histogram):
+        click.echo(line)
+    for which, title in (("highest", "writing the token most raises the responder's attention to it"),
+                         ("lowest", "writing the token most lowers the responder's attention to it")):
+        click.echo(f"{which}-ranked diagonals ({title}):")
+        for row in detail.extremes(top, which):
+            click.echo(f"  {row['token']:>7} {row['text']!r:<24} rank {row['rank']:>9.1f}  percentile {row['percentile']:.4f}")
+    if chosen:
+        click.echo("chosen tokens:")
+        for t in chosen:
+            row = detail.row(t)
+            click.echo(f"  {row['token']:>7} {row['text']!r:<24} rank {row['rank']:>9.1f}  percentile {row['percentile']:.4f}")
+    if csv_file:
+        from .report.csvfiles import write_csv
+
+        try:
+            write_csv(csv_file, detail.table())
+        except OSError as exc:
+            raise CompositionError(f"cannot write {csv_file} ({exc.strerror}).") from None
+        click.echo(f"wrote {csv_file}")
+    if figure_file:
+        from .report.figures import pair_histogram
+
+        if not str(figure_file).lower().endswith((".png", ".svg")):
+            raise CompositionError(f"--figure {figure_file} must end in .png or .svg.")
+        try:
+            pair_histogram(s.histogram, f"{writer} \u2192 {responder}: percentile of the diagonal", Path(figure_file))
+        except OSError as exc:
+            raise CompositionError(f"cannot write {figure_file} ({exc.strerror}).") from None
+        click.echo(f"wrote {figure_file}")
+    click.echo(f"note: {CAUTION}")
+
+
+def _text_histogram(counts, width: int = 50) -> list[str]:
+    """One line per bin: range, fraction, a bar of '#', and '|' at the uniform null."""
+    frac = counts / max(1, counts.sum())
+    bins = frac.shape[0]
+    scale = width / max(float(frac.max()), 2.0 / bins)
+    null = int(round(scale / bins))
+    lines = []
+    for i, f in enumerate(frac):
+        bar = list("#" * int(round(f * scale)))
+        bar += [" "] * max(0, null + 1 - len(bar))
+        if bar[null] == " ":
+            bar[null] = "|"
+        lines.append(f"  {i / bins:4.2f}-{(i + 1) / bins:4.2f} {f:6.3f} {''.join(bar).rstrip()}")
+    return lines

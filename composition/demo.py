@@ -144,6 +144,9 @@ def build_demo(directory: str | Path, seed: int = 0) -> Path:
         "note": "invented demo model of the composition project; see data_cards/demo-model.md",
     }
     (out / "config.json").write_text(json.dumps(config, indent=2) + "\n")
+    # An invented vocabulary, so reports can show token text (plain-JSON tokenizer.json).
+    vocab = {text: i for i, text in enumerate(_invented_words(V))}
+    (out / "tokenizer.json").write_text(json.dumps({"model": {"type": "WordLevel", "vocab": vocab}}) + "\n")
     return out
 
 
@@ -211,3 +214,12 @@ def _subspaces(gauss: torch.Tensor, d: int) -> torch.Tensor:
     ones = torch.ones(d, 1, dtype=torch.float64) / d**0.5
     q, _ = torch.linalg.qr(torch.cat([ones, gauss[:, : d - 1]], 1))
     return q[:, 1:]
+
+
+def _invented_words(n: int) -> list[str]:
+    """``n`` distinct made-up words of two or three syllables, in a fixed order."""
+    onsets, vowels = "bdfgklmnprstvz", "aeiou"
+    syllables = [c + v for c in onsets for v in vowels]  # 70
+    words = [a + b for a in syllables for b in syllables]  # 4900
+    words += [a + b + c for a in syllables[:20] for b in syllables for c in syllables]
+    return words[:n]

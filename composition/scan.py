@@ -218,7 +218,8 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
             with guard.critical():
                 store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS), overwrite)
             with store:
-                if not store.complete:
+                finishing = not store.complete
+                if finishing:
                     _complete(store, run, guard, w, attrs, options,
                               dict(checkpoint=checkpoint, cluster=cluster, workers=workers,
                                    worker_checkpoint=worker_checkpoint))
@@ -230,6 +231,10 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
             raise CompositionError(
                 f"cannot write the scan file {out} ({exc.reason}); {run.committed_note(kept=True)}"
             ) from None
+    if finishing:  # head profiles and model-space scores beside the pairs (composition/heads.py)
+        from .heads import add_to_scan
+
+        add_to_scan(out, w)
     return load_scan(out)
 
 
