@@ -7,6 +7,9 @@ per pair the query factor and per responder layer the packed keys (timed on fact
 the model's size), and the ranks themselves: rows x vocabulary entries at the rate the
 ranks kernel reaches on Gaussian factors of the model's vocabulary and head width.
 
+A finished scan also profiles the OV circuit of every head it scanned (``composition.heads``):
+one full-vocabulary diagonal rank per head, counted at the same kernel rate.
+
 Peak memory: the process after loading the checkpoint (measured), plus the token table,
 one layer of writer values and of responder keys (float64), one layer of packed keys and
 one pair's working set. Sequential scans (``--until-ci``) are estimated for pairs without
@@ -67,7 +70,8 @@ class Plan:
             f"ranks kernel       {self.rate / 1e9:.3f} G entries/s here ({self.engine}, {self.precision})",
             f"estimated time     {_duration(self.total_seconds)}"
             f"  (ranks {_duration(s['ranks'])}, factors {_duration(s['factors'] + s['table'])}, "
-            f"per pair {_duration(s['per_pair'])}, load {_duration(s['load'] + s['write'])})",
+            f"per pair {_duration(s['per_pair'])}, head profiles {_duration(s['heads'])}, "
+            f"load {_duration(s['load'] + s['write'])})",
             f"peak memory        {self.peak_bytes / 2**30:.2f} GiB",
         ]
         return "\n".join(lines)
@@ -157,6 +161,7 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     rate = kernel_rate_entries(options.precision, seconds=max(0.5, calibrate_seconds), V=V, r=dh,
                                engine=options.engine)
     n_pairs = len(pairs)
+    profiled = {u for u, _ in pairs} | {r for _, r in pairs}
     entries = float(n_pairs) * rows * V
     seconds = {
         "load": t_load,
@@ -166,6 +171,10 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
         "per_pair": n_pairs * t_left + len(units) * looks_used * t_unit_summary,
         "ranks": entries / rate,
         "write": t_fp,
+        # a finished scan adds the OV profiles of its writers and responders (composition.heads):
+        # one full V x V diagonal rank per head, a fresh token table and one value build per layer
+        "heads": len(profiled) * float(V) * V / rate + t_table * scale
+        + len({h[0] for h in profiled}) * t_values * scale,
     }
     f64 = 8 * V
     per_pair = V * dh * 8 + rows * dh * (8 + 8 + 4 + 4 + (8 if options.precision == "bf16-checked" else 0)) \
