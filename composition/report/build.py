@@ -97,6 +97,12 @@ def smoothed_enrichment(share: np.ndarray, rows: np.ndarray, k: int, n: int) -> 
         return (share * rows + 0.5) / (k * rows / n + 0.5)
 
 
+def _side_words(attrs: dict) -> str:
+    """``query side``, ``key side``, ``value side``; with the query part when it is not the full write."""
+    side, part = attrs.get("side", "query"), attrs.get("query_part", "full")
+    return f"{side} side" + ("" if part in (None, "full", "none") else f", {part} part of the write")
+
+
 def _figures(scan: Scan, heads: HeadData, comp: dict, out: Path) -> list[Figure]:
     a = scan.attrs
     n = int(a["keys_per_row"])
@@ -118,7 +124,7 @@ def _figures(scan: Scan, heads: HeadData, comp: dict, out: Path) -> list[Figure]
     add("mean_percentile", "heatmap", "Mean percentile of the diagonal",
         "Brick: writing a token makes the responder attend to that token more than to other tokens "
         "(attention-raising); teal: less (attention-lowering); cream: what the null model expects (0.5).",
-        fg.heatmap(mp, scan_axes, out, "mean_percentile", "Mean percentile of the diagonal (query side)",
+        fg.heatmap(mp, scan_axes, out, "mean_percentile", f"Mean percentile of the diagonal ({_side_words(a)})",
                    "mean percentile of the diagonal (1 = top, 0 = bottom)", 0.5, half_width=0.5))
     for which, word in (("top", "highest"), ("bottom", "lowest")):
         share = scan.top_share[..., j] if which == "top" else scan.bottom_share[..., j]
