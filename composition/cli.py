@@ -221,6 +221,11 @@ def _run(checkpoint, out, options, overwrite, quiet, **execution):
 _SHOW_AT_MOST = 20
 
 
+def _q(value: float) -> str:
+    """A q-value for the terminal; those below the float range print as <1e-300."""
+    return "<1e-300" if value == 0 else f"{value:.1e}"
+
+
 def _print_findings(result, note: bool = True) -> None:
     lab = result.label
     found = [tuple(int(i) for i in ix) for ix in np.argwhere((lab != 0) & (lab != LABEL_NOT_COMPUTED))]
@@ -239,7 +244,7 @@ def _print_findings(result, note: bool = True) -> None:
         q = result.q_value[ix]
         click.echo(f"  {f'{ix[0]}.{ix[1]}':<7} {f'{ix[2]}.{ix[3]}':<9}  {words[int(lab[ix])]:<19} "
                    f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
-                   f"{result.bottom_share[ix][0]:9.3f} {'<1e-300' if q == 0 else f'{q:.1e}':>9}"
+                   f"{result.bottom_share[ix][0]:9.3f} {_q(q):>9}"
                    + (f" {result.write_fraction[ix]:14.3f}" if fraction else ""))
     if len(found) > _SHOW_AT_MOST:
         click.echo(f"  ... and {len(found) - _SHOW_AT_MOST} more, strongest first above; all are in {result.path}")
@@ -401,7 +406,7 @@ def _print_heads(data) -> None:
         click.echo(f"  {'head':>5}  {'OV label':<11} {'mean pct':>8} {'q-value':>9} {'copying score':>13}")
     for l, h in sorted(labelled, key=lambda i: -abs(hp["mean_percentile"][i] - 0.5)):
         click.echo(f"  {l:>3}.{h:<1}  {HEAD_LABEL_WORDS[int(hp['label'][l, h])]:<11} {hp['mean_percentile'][l, h]:8.3f} "
-                   f"{hp['q_value'][l, h]:9.1e} {hp['eigen_copying_score'][l, h]:13.3f}")
+                   f"{_q(hp['q_value'][l, h]):>9} {hp['eigen_copying_score'][l, h]:13.3f}")
     draws = data.model_space_attrs["baseline_draws"]
     for kind in KINDS:
         mean, sd = data.baseline(kind)
@@ -441,9 +446,9 @@ def _print_shortlist(candidates) -> None:
                f"{'writer':>6} {'pair pct':>8} {'pair q':>8} {'Q-comp z':>8}  prediction")
     for rank, c in enumerate(candidates, 1):
         for j, r in enumerate(c.writers):
-            head = (f"{rank:>2} {c.kind:<10} {c.label:>5} {c.ov_mean_percentile:6.3f} {c.ov_q_value:8.1e} "
+            head = (f"{rank:>2} {c.kind:<10} {c.label:>5} {c.ov_mean_percentile:6.3f} {_q(c.ov_q_value):>8} "
                     f"{c.copying_score:6.2f}" if j == 0 else " " * 43)
-            click.echo(f"  {head}  {r['writer']:>6} {r['mean_percentile']:8.3f} {r['q_value']:8.1e} "
+            click.echo(f"  {head}  {r['writer']:>6} {r['mean_percentile']:8.3f} {_q(r['q_value']):>8} "
                        f"{r['q_composition_z']:8.1f}  {r['prediction']}")
 
 
