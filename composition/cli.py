@@ -317,21 +317,7 @@ def _demo_sides(root: Path, model, quiet) -> None:
             parts[part] = result
         else:
             _print_findings(result, note=False)
-    full = load_scan(root / "demo-scan.h5")
-    k = int(full.k[-1])
-    click.echo(f"mediation of the query side's labelled pairs: top-{k} share (and write fraction) per part")
-    click.echo(f"  {'writer':>7} {'responder':>9}  {'full':>6} {'unembed':>16} {'rest':>16}")
-    for ix in np.argwhere((full.label == 1) | (full.label == -1)):
-        ix = tuple(int(i) for i in ix)
-        if not parts["unembed"].done[ix]:
-            continue
-        which = "top_share" if full.label[ix] == 1 else "bottom_share"
-        cells = [f"{getattr(parts[p], which)[ix][-1]:6.3f} ({parts[p].write_fraction[ix]:.3f})" for p in ("unembed", "rest")]
-        click.echo(f"  {ix[0]}.{ix[1]:<5} {ix[2]}.{ix[3]:<7}  {getattr(full, which)[ix][-1]:6.3f} "
-                   f"{cells[0]:>16} {cells[1]:>16}")
-    click.echo("  (bottom-k share for attention-lowering pairs; rank statistics are blind to magnitude, so read"
-               " each part beside the fraction of the write it carries; for pairs neutral on the full write the"
-               " two parts can carry opposite labels that cancel: see docs/sides.md)")
+    _print_mediation(load_scan(root / "demo-scan.h5"), [parts["unembed"].path, parts["rest"].path])
     click.echo("planted for the other sides and parts (invented scenario):")
     for name, (u, r, what) in SIDE_CIRCUITS.items():
         click.echo(f"  {name:<15} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: {what}")
@@ -418,7 +404,10 @@ def _print_heads(data) -> None:
 @click.argument("scan_file", type=click.Path())
 @click.option("--heads", "heads_file", type=click.Path(), help="Heads file, if the scan file has no /heads group.")
 @click.option("--csv", "csv_file", type=click.Path(), help="Also write the shortlist as CSV, one row per (head, writer).")
-def shortlist(scan_file, heads_file, csv_file):
+@click.option("--parts", metavar="UNEMBED.h5,REST.h5",
+              help="Query-part scans of the same model (--query-part unembed / rest): show how much of each "
+                   "labelled pair survives in each part.")
+def shortlist(scan_file, heads_file, csv_file, parts):
     """Candidate suppressor and back-up heads of a scan, with the writers each responds to."""
     from .predict import shortlist as make_shortlist
     from .predict import shortlist_rows
@@ -428,12 +417,38 @@ def shortlist(scan_file, heads_file, csv_file):
     scan_data, head_data = load_report_inputs(scan_file, heads_file)
     candidates = make_shortlist(scan_data, head_data)
     _print_shortlist(candidates)
+    if parts:
+        _print_mediation(scan_data, [p for p in parts.split(",") if p.strip()])
     if csv_file:
         try:
             write_csv(csv_file, shortlist_rows(candidates))
         except OSError as exc:
             raise CompositionError(f"cannot write {csv_file} ({exc.strerror}).") from None
         click.echo(f"wrote {csv_file}")
+
+
+def _print_mediation(full, part_files) -> None:
+    """The mediation table: each labelled pair's share in the full write and in each part."""
+    from .predict import mediation_rows
+
+    parts = {}
+    for f in part_files:
+        part = load_scan(f)
+        parts[str(part.attrs.get("query_part"))] = part
+    rows = [r for r in mediation_rows(full, parts) if not all(np.isnan(r[p]) for p in parts)]
+    names = sorted(parts, key=lambda p: ("unembed", "rest").index(p) if p in ("unembed", "rest") else 2)
+    click.echo(f"mediation of the query side's labelled pairs: share (and write fraction) per part")
+    click.echo(f"  {'writer':<7} {'responder':<9}  {'share':<10} {'full':>6}" + "".join(f" {p:>16}" for p in names))
+    for r in rows:
+        cells = "".join(" " + _share_cell(r[p], r[f"{p}_write_fraction"]).rjust(16) for p in names)
+        click.echo(f"  {r['writer']:<7} {r['responder']:<9}  {r['share']:<10} {r['full']:6.3f}{cells}")
+    click.echo("  (bottom-k share for attention-lowering pairs; rank statistics are blind to magnitude, so read"
+               " each part beside the fraction of the write it carries; for pairs neutral on the full write the"
+               " two parts can carry opposite labels that cancel: see docs/sides.md)")
+
+
+def _share_cell(share: float, fraction: float) -> str:
+    return "not scanned" if np.isnan(share) else f"{share:6.3f} ({fraction:.3f})"
 
 
 def _print_shortlist(candidates) -> None:

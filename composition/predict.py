@@ -159,3 +159,37 @@ def pair_prediction(scan: Scan, heads: HeadData, writer: tuple[int, int], respon
             "s_writer": int(comp["s_writer"][i]), "s_response": int(comp["s_response"][i]),
             "s_responder": int(comp["s_responder"][i]),
             "prediction": PREDICTION_WORDS[int(comp["prediction"][i])]}
+
+
+def mediation_rows(full, parts: dict) -> list[dict]:
+    """How much of each labelled query-side pair survives in each mediation part (METHODS §3b).
+
+    ``full`` is the query-side scan of the whole write, ``parts`` maps ``unembed``/``rest``
+    to the scans of those parts (same checkpoint and selection). One row per pair labelled on
+    the full write: its top-k share (bottom-k for attention-lowering pairs, k the largest of
+    the scan) in the full write and in each part, and the fraction of the write's squared
+    norm each part carries. Rank statistics are blind to magnitude: read a part's share
+    beside its write fraction.
+    """
+    from .errors import CompositionError
+
+    for name, part in parts.items():
+        a = part.attrs
+        if a.get("side", "query") != "query" or name not in ("unembed", "rest") or a.get("query_part") != name:
+            raise CompositionError(f"{part.path} is not a scan of a query part (--query-part unembed or rest).")
+        if a.get("weights_fingerprint") != full.attrs.get("weights_fingerprint"):
+            raise CompositionError(f"{part.path} was computed from other weights than {full.path}.")
+    k = int(full.k[-1])
+    rows = []
+    for ix in np.argwhere((full.label == 1) | (full.label == -1)):
+        ix = tuple(int(i) for i in ix)
+        which = "top_share" if full.label[ix] == 1 else "bottom_share"
+        row = {"writer": f"{ix[0]}.{ix[1]}", "responder": f"{ix[2]}.{ix[3]}",
+               "response": RESPONSE_WORDS[int(full.label[ix])], "share": f"{which.split('_')[0]}-{k}",
+               "full": float(getattr(full, which)[ix][-1])}
+        for name, part in parts.items():
+            done = bool(part.done[ix])
+            row[name] = float(getattr(part, which)[ix][-1]) if done else float("nan")
+            row[f"{name}_write_fraction"] = float(part.write_fraction[ix]) if done else float("nan")
+        rows.append(row)
+    return rows

@@ -557,3 +557,28 @@ def test_sampled_rows_on_other_sides(small, tmp_path, side, part):
         assert scan.rows_evaluated[ix] == 60
         assert scan.mean_percentile[ix] == pytest.approx(np.mean(1 - ranks / (CFG["vocab_size"] - 1)), abs=1e-15)
         np.testing.assert_array_equal(scan.top_share[ix], [(ranks < k).mean() for k in scan.k])
+
+
+def test_mediation_rows_recover_the_planted_parts(tmp_path):
+    """Recovery of what was planted in the invented demo model: the mediation table
+    (composition.predict.mediation_rows, shown by `composition shortlist --parts`) keeps the
+    on-unembedding pair 1.3 -> 2.4 in `unembed` and loses it in `rest`, and the reverse for the
+    off-unembedding pair 1.1 -> 2.1; each part's write fraction is reported beside its share and
+    the two fractions add up to 1 (METHODS §3b)."""
+    from composition.demo import build_demo
+    from composition.predict import mediation_rows
+
+    model = build_demo(tmp_path / "demo")
+    scans = {part: run_scan(model, tmp_path / f"{part}.h5",
+                            ScanOptions(query_part=part, writers="1.1,1.3", responders="2.1,2.4"))
+             for part in ("full", "unembed", "rest")}
+    rows = {(r["writer"], r["responder"]): r
+            for r in mediation_rows(scans["full"], {"unembed": scans["unembed"], "rest": scans["rest"]})}
+    assert set(rows) == {("1.3", "2.4"), ("1.1", "2.1")}
+    on, off = rows[("1.3", "2.4")], rows[("1.1", "2.1")]
+    assert on["unembed"] > 0.9 and on["rest"] < 0.1
+    assert off["rest"] > 0.9 and off["unembed"] < 0.1
+    for r in (on, off):
+        assert r["unembed_write_fraction"] + r["rest_write_fraction"] == pytest.approx(1.0, abs=1e-9)
+    with pytest.raises(CompositionError, match="query part"):
+        mediation_rows(scans["full"], {"full": scans["full"]})
