@@ -294,16 +294,17 @@ def demo(directory, quiet):
     for name, (u, r, _, _, qk, ov) in PLANTED_CIRCUITS.items():
         click.echo(f"  {name:<11} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: "
                    f"{_LABEL_WORDS[qk]}, responder {'copies' if ov > 0 else 'suppresses'}")
+    part_files = _demo_sides(root, model, quiet)
     from .predict import shortlist as make_shortlist
     from .report import load_report_inputs, write_report
 
-    index = write_report(root / "demo-scan.h5", root / "demo-report")
+    index = write_report(root / "demo-scan.h5", root / "demo-report", part_paths=part_files)
     click.echo(f"report: {index}")
     _print_shortlist(make_shortlist(*load_report_inputs(root / "demo-scan.h5")))
-    _demo_sides(root, model, quiet)
+    click.echo(f"note: {CAUTION}")
 
 
-def _demo_sides(root: Path, model, quiet) -> None:
+def _demo_sides(root: Path, model, quiet) -> list:
     """The demo's other sides and query parts (docs/sides.md), for the writers of layer 1."""
     from .demo import SIDE_CIRCUITS
 
@@ -317,11 +318,12 @@ def _demo_sides(root: Path, model, quiet) -> None:
             parts[part] = result
         else:
             _print_findings(result, note=False)
-    _print_mediation(load_scan(root / "demo-scan.h5"), [parts["unembed"].path, parts["rest"].path])
+    part_files = [parts["unembed"].path, parts["rest"].path]
+    _print_mediation(load_scan(root / "demo-scan.h5"), part_files)
     click.echo("planted for the other sides and parts (invented scenario):")
     for name, (u, r, what) in SIDE_CIRCUITS.items():
         click.echo(f"  {name:<15} writer {u[0]}.{u[1]} -> responder {r[0]}.{r[1]}: {what}")
-    click.echo(f"note: {CAUTION}")
+    return part_files
 
 
 # ---------------------------------------------------------------------------
@@ -471,11 +473,13 @@ def _print_shortlist(candidates) -> None:
 @click.argument("scan_file", type=click.Path())
 @click.option("--out", "-o", required=True, type=click.Path(), help="Report directory to write.")
 @click.option("--heads", "heads_file", type=click.Path(), help="Heads file, if the scan file has no /heads group.")
-def report(scan_file, out, heads_file):
+@click.option("--parts", metavar="UNEMBED.h5,REST.h5",
+              help="Query-part scans of the same model (--query-part unembed / rest): add a mediation table.")
+def report(scan_file, out, heads_file, parts):
     """Heatmaps, per-head bars, compensation map, CSV tables and index.html of a scan."""
     from .report import write_report
 
-    index = write_report(scan_file, out, heads_file)
+    index = write_report(scan_file, out, heads_file, [p for p in (parts or "").split(",") if p.strip()])
     click.echo(f"wrote the report {index}")
 
 

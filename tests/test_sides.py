@@ -582,3 +582,10 @@ def test_mediation_rows_recover_the_planted_parts(tmp_path):
         assert r["unembed_write_fraction"] + r["rest_write_fraction"] == pytest.approx(1.0, abs=1e-9)
     with pytest.raises(CompositionError, match="query part"):
         mediation_rows(scans["full"], {"full": scans["full"]})
+    from composition.report import write_report
+
+    index = write_report(tmp_path / "full.h5", tmp_path / "report",
+                         part_paths=[tmp_path / "unembed.h5", tmp_path / "rest.h5"])
+    page = index.read_text()
+    assert 'id="mediation"' in page and "0.275" in page  # 1.3 -> 2.4: the unembed part's write fraction
+    assert len((tmp_path / "report" / "tables" / "mediation.csv").read_text().splitlines()) == 1 + 2

@@ -60,9 +60,21 @@ def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLi
 
 
 def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
-                 heads_path: str | os.PathLike | None = None) -> Path:
-    """Write the report of a scan into ``out_dir``; return the path of ``index.html``."""
+                 heads_path: str | os.PathLike | None = None, part_paths=()) -> Path:
+    """Write the report of a scan into ``out_dir``; return the path of ``index.html``.
+
+    ``part_paths``: query-part scans (``unembed``, ``rest``) of the same model; the report then
+    has a mediation table of the labelled pairs (``composition.predict.mediation_rows``).
+    """
+    from ..predict import mediation_rows
+    from ..scanfile import load_scan
+
     scan, heads = load_report_inputs(scan_path, heads_path)
+    parts = {}
+    for path in part_paths:
+        part = load_scan(path)
+        parts[str(part.attrs.get("query_part"))] = part
+    mediation = mediation_rows(scan, parts) if parts else []
     out = Path(out_dir)
     try:
         (out / "figures").mkdir(parents=True, exist_ok=True)
@@ -74,7 +86,9 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
         comp = compensation(scan.label, heads.heads["label"])
         figs = _figures(scan, heads, comp, out / "figures")
         tables = _tables(scan, heads, candidates, comp, out / "tables")
-        page = _page(scan, heads, candidates, comp, figs, tables, out)
+        if mediation:
+            tables["mediation"] = write_csv(out / "tables" / "mediation.csv", mediation)
+        page = _page(scan, heads, candidates, comp, figs, tables, out, mediation)
         index = out / "index.html"
         index.write_text(page, encoding="utf-8")
     except OSError as exc:
@@ -339,8 +353,31 @@ def _figure_html(fig: Figure, out: Path) -> str:
             f'<a href="{_e(rel["png"])}">PNG</a> \u00b7 <a href="{_e(rel["svg"])}">SVG</a></figcaption></figure>')
 
 
+def _mediation_html(rows: list[dict]) -> str:
+    """The mediation section: each labelled pair's share in the full write and in each part."""
+    if not rows:
+        return ""
+    names = [p for p in ("unembed", "rest") if p in rows[0]]
+
+    def cell(r, p):
+        return "not scanned" if np.isnan(r[p]) else f"{r[p]:.3f} ({r[p + '_write_fraction']:.3f})"
+
+    body = [[_e(r["writer"]), _e(r["responder"]), _e(r["response"]), _e(r["share"]), f"{r['full']:.3f}"]
+            + [cell(r, p) for p in names] for r in rows]
+    table = _table(["writer", "responder", "response", "share", "full write"]
+                   + [f"{p} part (write fraction)" for p in names], body, text_cols=4)
+    return f"""<h2 id="mediation">Mediation: through which direction the responder reads the writer</h2>
+<p class="muted">For every pair labelled on the full write: its top-k share (bottom-k for attention-lowering
+pairs) when the write is replaced by its projection on the written token's own unembedding direction
+(<b>unembed</b>) or by the remainder (<b>rest</b>), with the mean fraction of the write's squared norm each
+part carries. Rank statistics are blind to magnitude: a part that carries 1&nbsp;% of the write can still rank
+perfectly, so never call a pair mediated by a part with a small fraction.</p>
+{table}
+"""
+
+
 def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, figs: list[Figure],
-          tables: dict[str, Path], out: Path) -> str:
+          tables: dict[str, Path], out: Path, mediation: list[dict] = ()) -> str:
     a = scan.attrs
     ks = [int(k) for k in scan.k]
     k0 = ks[0]
@@ -508,6 +545,7 @@ selection. They say how much two heads' subspaces overlap, not which tokens are 
 {figs_of("q_composition", "k_composition", "v_composition", "projection_kernel_q", "projection_kernel_k",
          "projection_kernel_v")}
 
+{_mediation_html(list(mediation))}
 <h2 id="pairs">Labelled pairs</h2>
 {figs_of("pair_histograms")}
 {pairs_html}
