@@ -83,13 +83,29 @@ def run_units(todo: list, commit: Callable[[int, dict], None], *, checkpoint: st
                 raise CompositionError(f"cannot reach the Dask scheduler at {address} ({exc}).") from None
             torch_threads = None
         run = uuid.uuid4().hex[:12]
-        for n_done, (i, unit) in enumerate(todo):
+
+        def submit(i, unit, priority, attempt=0):
             future = client.submit(_compute_remote, checkpoint, fingerprint, options, unit, torch_threads,
-                                   key=f"composition-unit-{run}-{i}", pure=False, priority=len(todo) - n_done)
-            futures[future] = (i, unit)
-        for future in distributed.as_completed(list(futures)):
-            i, unit = futures.pop(future)
-            commit(i, _result(future, unit, distributed))
+                                   key=f"composition-unit-{run}-{i}-{attempt}", pure=False, priority=priority)
+            futures[future] = (i, unit, attempt)
+            return future
+
+        for n_done, (i, unit) in enumerate(todo):
+            submit(i, unit, len(todo) - n_done)
+        pending = distributed.as_completed(list(futures))
+        for future in pending:
+            i, unit, attempt = futures.pop(future)
+            try:
+                results = _result(future, unit, distributed)
+            except _WorkerTrouble:
+                if attempt + 1 >= _ATTEMPTS:
+                    raise CompositionError(
+                        f"the work unit of writer {unit.writer[0]}.{unit.writer[1]} and responder layer "
+                        f"{unit.responder_layer} failed on {_ATTEMPTS} workers in a row ({future.exception()!r}).") from None
+                pending.add(submit(i, unit, len(todo), attempt + 1))  # results are deterministic: redo it
+                future.release()
+                continue
+            commit(i, results)
             future.release()
     finally:
         for future in futures:
@@ -139,10 +155,15 @@ def _result(future, unit, distributed) -> dict:
         raise CompositionError(
             f"the work unit of writer {unit.writer[0]}.{unit.writer[1]} and responder layer {unit.responder_layer} "
             "ended every worker that ran it (out of memory?); give the workers more memory.") from None
-    except Exception as exc:  # noqa: BLE001
-        raise CompositionError(
-            f"the work unit of writer {unit.writer[0]}.{unit.writer[1]} and responder layer {unit.responder_layer} "
-            f"failed on a worker ({type(exc).__name__}: {exc}).") from None
+    except Exception:  # noqa: BLE001  (a worker dying mid-unit can surface as any error of Dask's own)
+        raise _WorkerTrouble() from None
+
+
+_ATTEMPTS = 3
+
+
+class _WorkerTrouble(Exception):
+    """A unit failed on a worker for a reason other than its input: run it again elsewhere."""
 
 
 def _compute_remote(checkpoint: str, fingerprint: str, options, unit, torch_threads: int | None) -> dict:
