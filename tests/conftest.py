@@ -1,56 +1,14 @@
-"""Shared fixtures: small random GPT-2-layout checkpoints written as real safetensors files.
-
-Random-initialised models are test inputs for reference comparisons (CHECKS.md); they are
-not demo data and carry no planted structure.
-"""
+"""Shared fixtures: small random GPT-2-layout checkpoints (tests/small_checkpoint.py)."""
 
 from __future__ import annotations
 
-import json
 import os
 
-import numpy as np
 import pytest
 
+from .small_checkpoint import random_gpt2  # noqa: F401  (tests import it from here too)
+
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
-
-
-def random_gpt2(directory, seed=0, V=300, d=64, H=4, L=3, P=32, activation="gelu_new",
-                prefix="transformer.", duplicate_tokens=0, init_std=0.3):
-    """Write a random GPT-2-layout checkpoint; return (path, float64 state dict, config).
-
-    ``duplicate_tokens`` copies the first embedding row onto that many further rows, so the
-    token table has exact duplicates (and the token matrices exact ties).
-    """
-    from safetensors.numpy import save_file
-
-    rng = np.random.default_rng(seed)
-    m = 4 * d
-    sd = {"wte.weight": rng.normal(0, 1.0, (V, d)), "wpe.weight": rng.normal(0, 0.3, (P, d)),
-          "ln_f.weight": 1 + rng.normal(0, 0.1, d), "ln_f.bias": rng.normal(0, 0.1, d)}
-    if duplicate_tokens:
-        sd["wte.weight"][1:1 + duplicate_tokens] = sd["wte.weight"][0]
-    for i in range(L):
-        p = f"h.{i}."
-        for ln in ("ln_1", "ln_2"):
-            sd[p + ln + ".weight"] = 1 + rng.normal(0, 0.1, d)
-            sd[p + ln + ".bias"] = rng.normal(0, 0.1, d)
-        sd[p + "attn.c_attn.weight"] = rng.normal(0, init_std, (d, 3 * d))
-        sd[p + "attn.c_attn.bias"] = rng.normal(0, 0.1, 3 * d)
-        sd[p + "attn.c_proj.weight"] = rng.normal(0, init_std, (d, d))
-        sd[p + "attn.c_proj.bias"] = rng.normal(0, 0.1, d)
-        sd[p + "mlp.c_fc.weight"] = rng.normal(0, init_std, (d, m))
-        sd[p + "mlp.c_fc.bias"] = rng.normal(0, 0.1, m)
-        sd[p + "mlp.c_proj.weight"] = rng.normal(0, init_std, (m, d))
-        sd[p + "mlp.c_proj.bias"] = rng.normal(0, 0.1, d)
-    sd32 = {prefix + k: v.astype(np.float32) for k, v in sd.items()}
-    os.makedirs(directory, exist_ok=True)
-    save_file(sd32, os.path.join(directory, "model.safetensors"))
-    cfg = {"model_type": "gpt2", "n_embd": d, "n_head": H, "n_layer": L, "vocab_size": V,
-           "n_positions": P, "layer_norm_epsilon": 1e-5, "activation_function": activation, "n_inner": None}
-    with open(os.path.join(directory, "config.json"), "w") as f:
-        json.dump(cfg, f)
-    return directory, {k: v.astype(np.float64) for k, v in sd32.items()}, cfg
 
 
 @pytest.fixture

@@ -1,44 +1,56 @@
-"""A small random checkpoint in the GPT-2 layout, written with safetensors, for tests of
-long-run machinery (resume, interrupts, cluster) that need a scan of a few seconds."""
+"""Small random checkpoints in the GPT-2 layout, written as real safetensors files: the one
+place tests build them. Random-initialised models are test inputs for reference comparisons
+(CHECKS.md); they are not demo data and carry no planted structure."""
 
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
-import torch
+import numpy as np
+
+
+def random_gpt2(directory, seed=0, V=300, d=64, H=4, L=3, P=32, activation="gelu_new",
+                prefix="transformer.", duplicate_tokens=0, init_std=0.3):
+    """Write a random GPT-2-layout checkpoint; return (path, float64 state dict, config).
+
+    ``duplicate_tokens`` copies the first embedding row onto that many further rows, so the
+    token table has exact duplicates (and the token matrices exact ties).
+    """
+    from safetensors.numpy import save_file
+
+    rng = np.random.default_rng(seed)
+    m = 4 * d
+    sd = {"wte.weight": rng.normal(0, 1.0, (V, d)), "wpe.weight": rng.normal(0, 0.3, (P, d)),
+          "ln_f.weight": 1 + rng.normal(0, 0.1, d), "ln_f.bias": rng.normal(0, 0.1, d)}
+    if duplicate_tokens:
+        sd["wte.weight"][1:1 + duplicate_tokens] = sd["wte.weight"][0]
+    for i in range(L):
+        p = f"h.{i}."
+        for ln in ("ln_1", "ln_2"):
+            sd[p + ln + ".weight"] = 1 + rng.normal(0, 0.1, d)
+            sd[p + ln + ".bias"] = rng.normal(0, 0.1, d)
+        sd[p + "attn.c_attn.weight"] = rng.normal(0, init_std, (d, 3 * d))
+        sd[p + "attn.c_attn.bias"] = rng.normal(0, 0.1, 3 * d)
+        sd[p + "attn.c_proj.weight"] = rng.normal(0, init_std, (d, d))
+        sd[p + "attn.c_proj.bias"] = rng.normal(0, 0.1, d)
+        sd[p + "mlp.c_fc.weight"] = rng.normal(0, init_std, (d, m))
+        sd[p + "mlp.c_fc.bias"] = rng.normal(0, 0.1, m)
+        sd[p + "mlp.c_proj.weight"] = rng.normal(0, init_std, (m, d))
+        sd[p + "mlp.c_proj.bias"] = rng.normal(0, 0.1, d)
+    sd32 = {prefix + k: v.astype(np.float32) for k, v in sd.items()}
+    os.makedirs(directory, exist_ok=True)
+    save_file(sd32, os.path.join(directory, "model.safetensors"))
+    cfg = {"model_type": "gpt2", "n_embd": d, "n_head": H, "n_layer": L, "vocab_size": V,
+           "n_positions": P, "layer_norm_epsilon": 1e-5, "activation_function": activation, "n_inner": None}
+    with open(os.path.join(directory, "config.json"), "w") as f:
+        json.dump(cfg, f)
+    return directory, {k: v.astype(np.float64) for k, v in sd32.items()}, cfg
 
 
 def build_small_gpt2(directory, vocab=1024, width=64, heads=4, layers=3, seed=0) -> Path:
-    """Write ``model.safetensors`` and ``config.json`` of a random GPT-2-layout model."""
-    from safetensors.torch import save_file
-
-    g = torch.Generator().manual_seed(seed)
-    V, d, H, L, P, m = vocab, width, heads, layers, 16, 4 * width
-
-    def randn(*shape, std=1.0):
-        return (torch.randn(*shape, generator=g, dtype=torch.float64) * std).float()
-
-    t = {"wte.weight": randn(V, d), "wpe.weight": randn(P, d, std=0.01),
-         "ln_f.weight": 1.0 + randn(d, std=0.02), "ln_f.bias": randn(d, std=0.02)}
-    for i in range(L):
-        p = f"h.{i}."
-        t[p + "attn.c_attn.weight"] = randn(d, 3 * d, std=d**-0.5)  # [d, 3d]
-        t[p + "attn.c_attn.bias"] = randn(3 * d, std=0.02)
-        t[p + "attn.c_proj.weight"] = randn(d, d, std=(d // H) ** -0.5)  # [H*dh, d]
-        t[p + "attn.c_proj.bias"] = randn(d, std=0.02)
-        for ln in ("ln_1", "ln_2"):
-            t[p + ln + ".weight"] = 1.0 + randn(d, std=0.02)
-            t[p + ln + ".bias"] = randn(d, std=0.02)
-        t[p + "mlp.c_fc.weight"] = randn(d, m, std=d**-0.5)
-        t[p + "mlp.c_fc.bias"] = randn(m, std=0.02)
-        t[p + "mlp.c_proj.weight"] = randn(m, d, std=0.1 * m**-0.5)
-        t[p + "mlp.c_proj.bias"] = randn(d, std=0.02)
-    out = Path(directory)
-    out.mkdir(parents=True, exist_ok=True)
-    save_file({k: v.contiguous() for k, v in t.items()}, str(out / "model.safetensors"), metadata={"format": "pt"})
-    config = {"model_type": "gpt2", "vocab_size": V, "n_embd": d, "n_head": H, "n_layer": L,
-              "n_positions": P, "n_ctx": P, "n_inner": None, "activation_function": "gelu_new",
-              "layer_norm_epsilon": 1e-5, "tie_word_embeddings": True}
-    (out / "config.json").write_text(json.dumps(config) + "\n")
-    return out
+    """A model whose whole scan takes a few seconds (48 pairs in 12 work units), for the tests
+    of long-run machinery (resume, interrupts, cluster)."""
+    return Path(random_gpt2(directory, seed=seed, V=vocab, d=width, H=heads, L=layers, P=16,
+                            init_std=width**-0.5)[0])
