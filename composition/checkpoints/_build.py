@@ -30,6 +30,18 @@ def config_int(config: dict, family: str, *keys: str, default=None) -> int:
     raise CompositionError(f"the {family} config lacks a usable {keys[0]!r} entry.")
 
 
+def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int]:
+    """``(d, H, L, V, dh)`` from the usual config names (``hidden_size``, ``num_attention_heads``,
+    ``num_hidden_layers``, ``vocab_size``), with the head width ``d / H``."""
+    d = config_int(config, family, "hidden_size")
+    H = config_int(config, family, "num_attention_heads")
+    L = config_int(config, family, "num_hidden_layers")
+    V = config_int(config, family, "vocab_size")
+    if d % H:
+        raise CompositionError(f"the config's hidden_size={d} is not divisible by num_attention_heads={H}.")
+    return d, H, L, V, d // H
+
+
 def activation(config: dict, key: str, default: str) -> str:
     name = config.get(key, default)
     if name not in ACTIVATIONS:

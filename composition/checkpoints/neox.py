@@ -14,7 +14,7 @@ import torch
 from ..errors import CompositionError
 from ..rotary import rotary_from_config
 from ..weights import MLP, Attention, Layer, Norm, Weights
-from ._build import LazyLayers, activation, config_int
+from ._build import LazyLayers, activation, config_int, config_sizes
 from .files import TensorSource
 
 
@@ -27,13 +27,7 @@ def matches(config: dict) -> bool:
 
 def read(src: TensorSource, config: dict) -> Weights:
     fam = "GPT-NeoX"
-    d = config_int(config, fam, "hidden_size")
-    H = config_int(config, fam, "num_attention_heads")
-    L = config_int(config, fam, "num_hidden_layers")
-    V = config_int(config, fam, "vocab_size")
-    if d % H:
-        raise CompositionError(f"the config's hidden_size={d} is not divisible by num_attention_heads={H}.")
-    dh = d // H
+    d, H, L, V, dh = config_sizes(config, fam)
     m = config_int(config, fam, "intermediate_size", default=4 * d)
     eps = float(config.get("layer_norm_eps", 1e-5))
     act = activation(config, "hidden_act", "gelu")
