@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import json
 import os
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -54,3 +55,24 @@ def build_small_gpt2(directory, vocab=1024, width=64, heads=4, layers=3, seed=0)
     of long-run machinery (resume, interrupts, cluster)."""
     return Path(random_gpt2(directory, seed=seed, V=vocab, d=width, H=heads, L=layers, P=16,
                             init_std=width**-0.5)[0])
+
+
+def assert_same_pairs(scan, ref) -> None:
+    """Every ``/pairs`` array of two scans is byte for byte the same."""
+    assert sorted(scan.arrays) == sorted(ref.arrays)
+    for name, data in ref.arrays.items():
+        assert scan.arrays[name].dtype == data.dtype, name
+        assert scan.arrays[name].tobytes() == data.tobytes(), f"/pairs/{name} differs"
+
+
+@contextmanager
+def one_torch_thread():
+    """One torch thread in this process (scans of a few seconds, several processes at once)."""
+    import torch
+
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before)

@@ -19,7 +19,7 @@ import pytest
 from composition.errors import CompositionError
 from composition.scan import run_scan
 from composition.scanfile import journal_path
-from .small_checkpoint import build_small_gpt2
+from .small_checkpoint import assert_same_pairs, build_small_gpt2, one_torch_thread
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -33,13 +33,8 @@ needs_dask = pytest.mark.skipif(distributed is None,
 
 @pytest.fixture(scope="module", autouse=True)
 def one_thread():
-    """One torch thread in this process (local workers get cores / workers = 1 each)."""
-    import torch
-
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+    with one_torch_thread():
+        yield
 
 
 @pytest.fixture(scope="module")
@@ -50,12 +45,6 @@ def model(tmp_path_factory):
 @pytest.fixture(scope="module")
 def reference(model, tmp_path_factory):
     return run_scan(model, tmp_path_factory.mktemp("cluster-reference") / "ref.h5")
-
-
-def assert_same_pairs(scan, ref):
-    assert sorted(scan.arrays) == sorted(ref.arrays)
-    for name, data in ref.arrays.items():
-        assert scan.arrays[name].tobytes() == data.tobytes(), f"/pairs/{name} differs"
 
 
 def test_core_imports_and_refuses_cluster_options_without_dask(model, tmp_path):

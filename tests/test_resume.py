@@ -30,19 +30,15 @@ from composition.interrupts import Guard, Interrupt
 from composition.progress import ProgressPrinter, ScanProgress, status_line
 from composition.scan import ScanOptions, run_scan, scan_pairs, work_units
 from composition.scanfile import journal_path, load_scan
-from .small_checkpoint import build_small_gpt2
+from .small_checkpoint import assert_same_pairs, build_small_gpt2, one_torch_thread
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="module", autouse=True)
 def one_thread():
-    import torch
-
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+    with one_torch_thread():
+        yield
 
 
 @pytest.fixture(scope="module")
@@ -62,13 +58,6 @@ def reference(model, tmp_path_factory):
     scan = run_scan(model, tmp_path_factory.mktemp("reference") / "ref.h5")
     seconds = time.monotonic() - start
     return scan, seconds / int(scan.attrs["units_total"])
-
-
-def assert_same_pairs(scan, ref):
-    assert sorted(scan.arrays) == sorted(ref.arrays)
-    for name, data in ref.arrays.items():
-        assert scan.arrays[name].dtype == data.dtype, name
-        assert scan.arrays[name].tobytes() == data.tobytes(), f"/pairs/{name} differs"
 
 
 def assert_partial_is_consistent(scan, ref, model_units):
