@@ -28,7 +28,7 @@ import numpy as np
 from . import __version__
 from .checkpoints import load_weights
 from .errors import CompositionError
-from .factors import ORIENTATIONS, query_middles, query_side, responder_keys, writer_values
+from .factors import ORIENTATIONS, query_middles, responder_keys, writer_values
 from .factors import (QUERY_PARTS, SIDES, key_middles, query_part_side, responder_queries,
                       responder_readouts, unembed_coefficients, unembed_directions, unembed_queries,
                       value_middles, write_fraction)
@@ -522,10 +522,9 @@ def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) ->
         if options.orientation == "row":  # left = A C (only the evaluated rows), right = K
             lefts.append(RowProduct(A, middles[hR]))
             rights.append(_prepared_keys(factors, lR, hR, options))
-        else:
-            side = lambda h=hR: query_side(A, middles[h], K[h], options.orientation)  # noqa: E731  [V, dh] x 2
-            lefts.append(lambda s=side: s()[0])
-            rights.append(lambda s=side: s()[1])
+        else:  # column: left = K, right = A C (METHODS §3, the transpose), built when reached
+            lefts.append(K[hR])  # [V, dh]
+            rights.append(lambda h=hR: A @ middles[h])  # [V, dh]
     stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
                            options.precision, options.device, options.engine, options.block_rows)
     return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}

@@ -124,3 +124,17 @@ def test_demo_scan_labels_exactly_the_planted_responders(tmp_path):
     assert found == PLANTED_PAIRS
     again = load_scan(tmp_path / "demo.h5")
     assert again.attrs["fingerprint"] == scan.attrs["fingerprint"]
+
+
+def test_column_orientation_scan_matches_the_dense_reference(tmp_path):
+    """Reference library: scipy.stats.rankdata via the dense oracle's column midranks
+    (METHODS.md §3, column orientation): the scan's shares and mean percentile are those of the
+    reference ranks of every column."""
+    path, sd, cfg = random_gpt2(str(tmp_path / "m"), seed=8, V=180, L=2)
+    scan = run_scan(path, tmp_path / "s.h5", ScanOptions(orientation="column", k=(1, 5)))
+    T_ref = oracle.token_table(sd, cfg, "attn0-mlp0", None)
+    for hU, hR in ((0, 0), (1, 3), (3, 2)):
+        ranks = oracle.midranks_columns(oracle.dense_token_matrix(sd, cfg, T_ref, (0, hU), (1, hR)))
+        i = (0, hU, 1, hR)
+        np.testing.assert_array_equal(scan.top_share[i], [(ranks < k).mean() for k in (1, 5)])
+        assert scan.mean_percentile[i] == pytest.approx((1 - ranks / 179).mean(), abs=1e-15)
