@@ -6,14 +6,14 @@ attention-raising or attention-lowering. Predictions from weights alone: they ra
 candidates for causal experiments, they are not causal evidence.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__  # noqa: E402
 
-from .checkpoints import load_weights  # noqa: E402
+from .extract import load_weights  # noqa: E402
 from .errors import CompositionError  # noqa: E402
-from .ranks import diagonal_midranks  # noqa: E402
-from .scan import ScanOptions, run_scan  # noqa: E402
-from .scanfile import load_scan  # noqa: E402
-from .tables import TableOptions, token_table  # noqa: E402
+from .score.ranks import diagonal_midranks  # noqa: E402
+from .run.scan import ScanOptions, run_scan  # noqa: E402
+from .store.scanfile import load_scan  # noqa: E402
+from .extract.tables import TableOptions, token_table  # noqa: E402
 
 __all__ = [
     "CompositionError",

@@ -1,3 +1,3 @@
-from .cli import main
+from .present.cli import main
 
 main(prog_name="composition")

@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from composition import ranks
+from composition.score import ranks
 
 V, DH = 50257, 64
 
@@ -119,7 +119,7 @@ def write_gpt2_sized(directory: Path, seed: int = 0) -> Path:
 
 _CHILD = r"""
 import json, resource, sys, time
-from composition.scan import ScanOptions, run_scan
+from composition.run.scan import ScanOptions, run_scan
 opts = ScanOptions(**json.loads(sys.argv[3]))
 t = time.perf_counter()
 run_scan(sys.argv[1], sys.argv[2], opts, overwrite=True)
@@ -189,8 +189,8 @@ def main() -> None:
     print(f"peak memory of this process so far: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20:.2f} GiB")
     if args.skip_model:
         return
-    from composition.plan import plan_scan
-    from composition.scan import ScanOptions
+    from composition.run.plan import plan_scan
+    from composition.run.scan import ScanOptions
 
     with tempfile.TemporaryDirectory() as tmp:
         model = write_gpt2_sized(Path(tmp) / "gpt2-sized")

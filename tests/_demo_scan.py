@@ -31,7 +31,7 @@ def planted_selection() -> tuple[str, str]:
 def demo_scan() -> Path:
     """Directory holding ``model/`` (the demo checkpoint) and ``scan.h5`` (with /heads)."""
     from composition.demo import build_demo
-    from composition.scan import ScanOptions, run_scan
+    from composition.run.scan import ScanOptions, run_scan
 
     root = Path(tempfile.mkdtemp(prefix="composition-demo-scan-"))
     atexit.register(shutil.rmtree, root, True)

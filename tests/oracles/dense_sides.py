@@ -134,7 +134,7 @@ def write_fraction(sd, cfg, table, writer, part):
 
 
 # ---------------------------------------------------------------------------
-# Any family, from canonical weights (composition.weights.Weights, read by the
+# Any family, from canonical weights (composition.extract.weights.Weights, read by the
 # package's checkpoint readers, which are themselves checked against
 # transformers).  Norms, linear parts and residual paths are re-derived here
 # from METHODS §1 in NumPy; only the weights come from the package.
@@ -174,7 +174,7 @@ def _norm_lin(norm, d):
 
 def _reads(w, layer):
     """The norm in front of a layer's attention; post-norm layers read the previous norm's output."""
-    from composition.weights import Norm
+    from composition.extract.weights import Norm
 
     return Norm("identity", None, None) if w.placement == "post" else w.layers[layer].attn_norm
 

@@ -87,9 +87,9 @@ def reference_logprobs(model, tokens=TOKENS):
 
 def our_logprobs(w, hidden_states, causal: bool):
     """Log-probabilities recomputed from canonical weights and the layer inputs. # -> [L, H, T, T]"""
-    from composition.factors import input_norm
-    from composition.rotary import rotation
-    from composition.tables import apply_norm
+    from composition.compose.factors import input_norm
+    from composition.extract.rotary import rotation
+    from composition.extract.tables import apply_norm
 
     out = []
     for layer in range(w.n_layers):

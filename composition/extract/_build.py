@@ -1,0 +1,115 @@
+"""Pieces every family reader shares: config lookups, weight re-orientation, grouped-query
+expansion and lazily loaded layers."""
+
+from __future__ import annotations
+
+from collections import OrderedDict
+from collections.abc import Callable, Sequence
+from dataclasses import fields
+
+import torch
+
+from ..errors import CompositionError
+from .weights import Layer
+
+ACTIVATIONS = {"gelu_new": "gelu-tanh", "gelu_pytorch_tanh": "gelu-tanh", "gelu_fast": "gelu-tanh",
+               "gelu": "gelu", "relu": "relu", "silu": "silu", "swish": "silu"}
+CACHE_BYTES = 2 << 30  # layers kept in memory at once (float32 bytes)
+
+
+def config_int(config: dict, family: str, *keys: str, default=None) -> int:
+    """The first of ``keys`` present in the config, as an int."""
+    for key in keys:
+        if config.get(key) is not None:
+            try:
+                return int(config[key])
+            except (TypeError, ValueError):
+                raise CompositionError(f"the {family} config's {key} = {config[key]!r} is not an integer.") from None
+    if default is not None:
+        return default
+    raise CompositionError(f"the {family} config lacks a usable {keys[0]!r} entry.")
+
+
+def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int]:
+    """``(d, H, L, V, dh)`` from the usual config names (``hidden_size``, ``num_attention_heads``,
+    ``num_hidden_layers``, ``vocab_size``), with the head width ``d / H``."""
+    d = config_int(config, family, "hidden_size")
+    H = config_int(config, family, "num_attention_heads")
+    L = config_int(config, family, "num_hidden_layers")
+    V = config_int(config, family, "vocab_size")
+    if d % H:
+        raise CompositionError(f"the config's hidden_size={d} is not divisible by num_attention_heads={H}.")
+    return d, H, L, V, d // H
+
+
+def activation(config: dict, key: str, default: str) -> str:
+    name = config.get(key, default)
+    if name not in ACTIVATIONS:
+        raise CompositionError(f"the config's {key} {name!r} is not supported (supported: {', '.join(ACTIVATIONS)}).")
+    return ACTIVATIONS[name]
+
+
+def linear_heads(w: torch.Tensor, n: int) -> torch.Tensor:
+    """An ``nn.Linear`` weight ``[n*dh, d]`` (out x in) -> per-head ``[n, d, dh]``."""
+    out, d = w.shape
+    return w.reshape(n, out // n, d).permute(0, 2, 1).contiguous()
+
+
+def expand_kv(w: torch.Tensor, n_heads: int) -> torch.Tensor:
+    """Grouped-query expansion: key/value head ``j`` serves query heads ``j*g .. j*g+g-1``.
+
+    # w [kv, ...] -> [n_heads, ...]  (the reference implementation's ``repeat_kv`` order)
+    """
+    kv = w.shape[0]
+    if n_heads % kv:
+        raise CompositionError(f"{n_heads} query heads cannot share {kv} key/value heads evenly.")
+    return w.repeat_interleave(n_heads // kv, dim=0)
+
+
+class LazyLayers(Sequence):
+    """Layers loaded on first use and kept while they fit ``CACHE_BYTES``; layer 0 stays.
+
+    A scan that touches a few layers of a large model reads only those layers' tensors.
+    """
+
+    def __init__(self, n: int, load: Callable[[int], Layer], budget: int | None = None):
+        self._n, self._load = n, load
+        self._budget = CACHE_BYTES if budget is None else budget
+        self._cache: OrderedDict[int, Layer] = OrderedDict()
+        self._bytes: dict[int, int] = {}
+
+    def __len__(self) -> int:
+        return self._n
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return tuple(self[j] for j in range(*i.indices(self._n)))
+        i = int(i)
+        if i < 0:
+            i += self._n
+        if not 0 <= i < self._n:
+            raise IndexError(i)
+        if i in self._cache:
+            self._cache.move_to_end(i)
+            return self._cache[i]
+        layer = self._load(i)
+        self._cache[i] = layer
+        self._bytes[i] = _layer_bytes(layer)
+        while sum(self._bytes.values()) > self._budget and len(self._cache) > 2:
+            victim = next(j for j in self._cache if j != 0 and j != i)
+            del self._cache[victim], self._bytes[victim]
+        return layer
+
+    def cached(self) -> list[int]:
+        """Indices of the layers held in memory now."""
+        return list(self._cache)
+
+
+def _layer_bytes(layer: Layer) -> int:
+    total = 0
+    for part in (layer.attn, layer.mlp, layer.attn_norm, layer.mlp_norm):
+        for f in fields(part):
+            t = getattr(part, f.name)
+            if isinstance(t, torch.Tensor):
+                total += t.numel() * t.element_size()
+    return total

@@ -1,0 +1,88 @@
+"""GPT-NeoX-style layout: fused QKV interleaved per head, parallel residual, partial
+rotary (split-half pairs), LayerNorm, untied unembedding.
+
+Tensor names follow the widely used GPT-NeoX export (``gpt_neox.layers.{i}.attention.
+query_key_value.weight`` ``[3d, d]``, out x in, whose output rows are grouped per head as
+``[q_h | k_h | v_h]``), with or without the ``gpt_neox.`` prefix; the unembedding is
+``embed_out.weight`` (or ``lm_head.weight``).
+"""
+
+from __future__ import annotations
+
+import torch
+
+from ..errors import CompositionError
+from .rotary import rotary_from_config
+from .weights import MLP, Attention, Layer, Norm, Weights
+from ._build import LazyLayers, activation, config_int, config_sizes
+from .files import TensorSource
+
+
+def matches(config: dict) -> bool:
+    return config.get("model_type") == "gpt_neox" or any(
+        str(a).startswith("GPTNeoX") and not str(a).startswith("GPTNeoXJapanese")
+        for a in config.get("architectures", []) or []
+    )
+
+
+def read(src: TensorSource, config: dict) -> Weights:
+    fam = "GPT-NeoX"
+    d, H, L, V, dh = config_sizes(config, fam)
+    m = config_int(config, fam, "intermediate_size", default=4 * d)
+    eps = float(config.get("layer_norm_eps", 1e-5))
+    act = activation(config, "hidden_act", "gelu")
+    bias = bool(config.get("attention_bias", True))
+    parallel = bool(config.get("use_parallel_residual", True))
+    rotary = rotary_from_config(config, dh, "split-half", default_fraction=0.25)
+    pre = "gpt_neox." if src.has("gpt_neox.embed_in.weight") else ""
+
+    def get(name, shape):
+        return src.get(pre + name, shape)
+
+    def norm(name):
+        return Norm("layernorm", get(f"{name}.weight", (d,)), get(f"{name}.bias", (d,)), eps)
+
+    def load_layer(i: int) -> Layer:
+        p = f"layers.{i}."
+        qkv = get(p + "attention.query_key_value.weight", (3 * d, d)).reshape(H, 3, dh, d)  # [H, 3, dh, d]
+        W_Q, W_K, W_V = (qkv[:, j].permute(0, 2, 1).contiguous() for j in range(3))  # [H, d, dh]
+        if bias:
+            qkv_b = get(p + "attention.query_key_value.bias", (3 * d,)).reshape(H, 3, dh)  # [H, 3, dh]
+            b_Q, b_K, b_V = (qkv_b[:, j].contiguous() for j in range(3))  # [H, dh]
+            b_O = get(p + "attention.dense.bias", (d,))  # [d]
+        else:
+            b_Q = b_K = b_V = torch.zeros(H, dh)
+            b_O = torch.zeros(d)
+        W_O = get(p + "attention.dense.weight", (d, d)).T.reshape(H, dh, d)  # [H, dh, d]
+        attn = Attention(W_Q.contiguous(), W_K, W_V, W_O.contiguous(), b_Q, b_K, b_V, b_O, kv_heads=H)
+        mlp = MLP(
+            W_in=get(p + "mlp.dense_h_to_4h.weight", (m, d)).T.contiguous(),  # [d, m]
+            b_in=get(p + "mlp.dense_h_to_4h.bias", (m,)),
+            W_out=get(p + "mlp.dense_4h_to_h.weight", (d, m)).T.contiguous(),  # [m, d]
+            b_out=get(p + "mlp.dense_4h_to_h.bias", (d,)),
+            activation=act,
+        )
+        return Layer(norm(p + "input_layernorm"), attn, norm(p + "post_attention_layernorm"), mlp)
+
+    W_E = get("embed_in.weight", (V, d))  # [V, d]
+    head = next((n for n in ("embed_out.weight", "lm_head.weight") if src.has(n)), None)
+    if head is not None:
+        W_U = src.get(head, (V, d)).T.contiguous()  # [d, V]
+        readout = "tied" if torch.equal(W_U.T, W_E) else "lm-head"
+    elif config.get("tie_word_embeddings", False):
+        W_U, readout = W_E.T.contiguous(), "tied"  # [d, V]
+    else:
+        raise CompositionError(f"tensor embed_out.weight (the unembedding) is missing from {src.path}.")
+    return Weights(
+        family="gpt-neox",
+        W_E=W_E,
+        W_pos=None,
+        W_U=W_U,
+        final_norm=norm("final_layer_norm"),
+        layers=LazyLayers(L, load_layer),
+        placement="parallel" if parallel else "pre",
+        rotary=rotary,
+        readout=readout,
+        source=str(src.path),
+        config=dict(config),
+    )

@@ -1,0 +1,563 @@
+"""Head profiles (METHODS §5) and model-space scores for every pair (METHODS §7).
+
+Head profiles. A head's OV token matrix ``F = A B^T`` ``[V, V]``, with
+``A = N_l(T) W_V`` ``[V, dh]`` and ``B^T = W_O Lin(N_f) W_U`` ``[dh, V]``, says how much
+attending to token ``t`` raises every token's logit. The diagonal midrank of row ``t``
+(the exact kernel of :mod:`composition.score.ranks`) is high for a copying head and low for a
+suppressing one; the shares, mean percentile and label use the same null model and the
+same Benjamini-Hochberg rule as the pairs (:mod:`composition.score.stats`), controlled over all
+heads of the model. The eigenvalue copying score is ``sum Re(lambda) / sum |lambda|`` over
+the eigenvalues of the ``[dh, dh]`` matrix ``B^T A``, whose non-zero eigenvalues are those
+of ``F`` (Elhage et al. 2021, "A Mathematical Framework for Transformer Circuits").
+
+Model-space scores, norms folded (``Lin`` of METHODS §1):
+``W_OV^U = Lin(N_lU) W_V^U W_O^U`` and ``W_QK^R = Lin(N_lR) W_Q^R (Lin(N_lR) W_K^R)^T``.
+Q-, K- and V-composition scores (Elhage et al. 2021) are
+``|W_OV^U W_QK^R|_F``, ``|W_OV^U (W_QK^R)^T|_F`` and ``|W_OV^U W_OV^R|_F`` divided by the
+product of the two factors' Frobenius norms; their baseline is the same score for Gaussian
+factors of the same shapes (mean and standard deviation over a stated number of draws).
+The projection kernel ``|Q1^T Q2|_F^2`` of orthonormal bases of the writer's write
+subspace (row space of ``W_O^U``) and the responder's read subspace (column space of
+``Lin(N_lR) W_Q^R``, ``... W_K^R`` or ``... W_V^R``) is the sum of squared cosines of their
+principal angles (Hamm & Lee 2008, "Grassmann discriminant analysis"; applied to
+attention heads by Yamagiwa, Takase & Shimodaira 2026); for uniformly random subspaces of
+dimensions ``a`` and ``b`` in ``R^d`` its mean is ``ab/d``.
+
+No ``[d, d]`` matrix is formed: for ``Z = X M Y^T`` with Gram square roots
+``S_X S_X^T = X^T X`` and ``S_Y S_Y^T = Y^T Y``, ``|Z|_F^2 = |S_X^T M S_Y|_F^2``, and with the
+middle ``M = W_O^U Y'`` this is ``|(W_O^U^T S_X)^T (Y' S_Y)|_F^2``: one ``[dh, d] x [d, dh]``
+product per pair, batched over heads, as for the projection kernel.
+
+Storage: the groups ``/heads`` (datasets ``[L, H, ...]``) and ``/model_space`` (datasets
+``[L, H, L, H]``) of a scan file (:func:`add_to_scan`) or of a separate heads file
+(:func:`write_heads_file`), read back by :func:`load_heads`.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import torch
+
+from ..errors import CompositionError
+from ..compose.factors import input_norm, writer_values
+from ..score.ranks import diagonal_midranks
+from ..score.stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, LABEL_NOT_COMPUTED, labels, summarise
+from ..extract.tables import TableOptions, apply_norm, norm_linear_part, token_table
+from ..extract.weights import Weights
+
+HEADS_FORMAT = "composition-heads"
+HEADS_FORMAT_VERSION = 1
+HEAD_LABEL_WORDS = {1: "copying", -1: "suppressing", 0: "neutral"}
+BASELINE_DRAWS = 200
+BASELINE_SEED = 0
+KINDS = ("q", "k", "v")
+
+
+# ---------------------------------------------------------------------------
+# Head profiles (METHODS §5)
+# ---------------------------------------------------------------------------
+
+def ov_factors(w: Weights, table: torch.Tensor, layer: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """The two factors of every head's OV token matrix ``F = A B^T`` in ``layer``.
+
+    # table [V, d] -> A [H, V, dh] = N_l(T) W_V, B [H, V_out, dh] = (W_O Lin(N_f) W_U)^T
+    """
+    A = writer_values(w, table, layer)  # [H, V, dh]
+    lin_f = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
+    W_O = w.layers[layer].attn.W_O.double()  # [H, dh, d]
+    Bt = torch.einsum("hed,df,fv->hev", W_O, lin_f, w.W_U.double())  # [H, dh, V_out]
+    return A, Bt.transpose(1, 2).contiguous()  # [H, V, dh], [H, V_out, dh]
+
+
+def eigen_copying_score(A: torch.Tensor, B: torch.Tensor) -> float:
+    """``sum Re(lambda) / sum |lambda|`` over the eigenvalues of ``B^T A`` (Elhage et al. 2021).
+
+    # A [V, dh], B [V, dh] -> float in [-1, 1] (NaN for a zero matrix)
+    The non-zero eigenvalues of the ``[V, V]`` matrix ``A B^T`` are those of ``B^T A``.
+    """
+    lam = np.linalg.eigvals((B.T @ A).numpy())  # [dh] complex
+    total = float(np.abs(lam).sum())
+    return float(lam.real.sum() / total) if total > 0 else float("nan")
+
+
+def head_profiles(w: Weights, table: torch.Tensor, ks=DEFAULT_K, fdr: float = DEFAULT_FDR,
+                  min_effect: float = DEFAULT_MIN_EFFECT, block_rows: int = 256,
+                  progress: Callable[[int, int], None] | None = None,
+                  heads: list[tuple[int, int]] | None = None) -> dict[str, np.ndarray]:
+    """OV diagonal statistics, eigenvalue copying score and label of every head (or of ``heads``).
+
+    # table [V, d] -> {name: [L, H, ...]}; label +1 copying, -1 suppressing, 0 neutral,
+    LABEL_NOT_COMPUTED for heads left out. Benjamini-Hochberg runs over the computed heads.
+    """
+    L, H = w.n_layers, w.n_heads
+    ks = tuple(int(k) for k in ks)
+    chosen = sorted(set(heads)) if heads is not None else [(l, h) for l in range(L) for h in range(H)]
+    n_rows = min(w.vocab_size, w.W_U.shape[1])  # diagonal exists for t < min(V_in, V_out)
+    n_keys = w.W_U.shape[1]
+    out = {
+        "top_share": np.full((L, H, len(ks)), np.nan),
+        "bottom_share": np.full((L, H, len(ks)), np.nan),
+        "mean_percentile": np.full((L, H), np.nan),
+        "histogram": np.zeros((L, H, HIST_BINS), np.int64),
+        "rows_evaluated": np.zeros((L, H), np.int64),
+        "p_value": np.full((L, H), np.nan),
+        "q_value": np.full((L, H), np.nan),
+        "eigen_copying_score": np.full((L, H), np.nan),
+        "label": np.full((L, H), LABEL_NOT_COMPUTED, np.int8),
+    }
+    rows = torch.arange(n_rows)
+    done = 0
+    for layer in sorted({l for l, _ in chosen}):
+        A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
+        for h in sorted(h for l, h in chosen if l == layer):
+            ranks = diagonal_midranks(A[h, :n_rows], B[h], rows=rows, block_rows=block_rows).numpy()  # [V]
+            s = summarise(ranks, n_keys, ks)
+            out["top_share"][layer, h] = s.top_share
+            out["bottom_share"][layer, h] = s.bottom_share
+            out["mean_percentile"][layer, h] = s.mean_percentile
+            out["histogram"][layer, h] = s.histogram
+            out["rows_evaluated"][layer, h] = s.rows
+            out["p_value"][layer, h] = s.p_value
+            out["eigen_copying_score"][layer, h] = eigen_copying_score(A[h, :n_rows], B[h, :n_rows])
+            done += 1
+            if progress:
+                progress(done, len(chosen))
+    sel = tuple(np.array(chosen).T) if chosen else (np.zeros(0, int), np.zeros(0, int))
+    lab, q = labels(out["mean_percentile"][sel], out["p_value"][sel], fdr, min_effect)
+    out["label"][sel] = lab
+    out["q_value"][sel] = q
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Model-space scores (METHODS §7)
+# ---------------------------------------------------------------------------
+
+def _gram(X: torch.Tensor) -> torch.Tensor:
+    """``X^T X`` over the model axis. # X [..., d, r] -> [..., r, r]"""
+    return X.transpose(-1, -2) @ X
+
+
+def _sqrt_psd(G: torch.Tensor) -> torch.Tensor:
+    """A square root ``S`` with ``S S^T = G`` of symmetric positive semi-definite matrices.
+
+    # G [n, r, r] -> [n, r, r]
+    """
+    lam, V = torch.linalg.eigh(G)  # [n, r], [n, r, r]
+    return V * lam.clamp_min(0.0).sqrt()[:, None, :]
+
+
+_CHUNK_BYTES = 64 * 2**20  # cap on the [a, b, r, r] block of cosines held at once
+
+
+def _cross_frob2(A: torch.Tensor, B: torch.Tensor) -> torch.Tensor:
+    """``|A_i^T B_j|_F^2`` for every ``i``, ``j``. # A [a, d, r], B [b, d, s] -> [a, b]
+
+    One matrix product per chunk of ``B``, so the ``[a, b, r, s]`` block stays small.
+    """
+    a, _, r = A.shape
+    step = max(1, _CHUNK_BYTES // (8 * a * r * B.shape[2]))
+    out = [torch.einsum("ade,bdf->abef", A, B[j:j + step]).pow(2).sum((-1, -2)) for j in range(0, B.shape[0], step)]
+    return torch.cat(out, 1) if out else A.new_zeros(a, 0)
+
+
+@dataclass(frozen=True)
+class HeadFactors:
+    """Norm-folded per-head factors of one layer (row-vector form):
+    ``W_OV = ov_in @ ov_out.T`` and ``W_QK = q @ k.T``, each ``[d, d]`` of rank <= dh."""
+
+    ov_in: torch.Tensor  # [H, d, dh]  Lin(N_l) W_V
+    ov_out: torch.Tensor  # [H, d, dh]  W_O^T
+    q: torch.Tensor  # [H, d, dh]  Lin(N_l) W_Q
+    k: torch.Tensor  # [H, d, dh]  Lin(N_l) W_K
+
+
+def fold_norm(norm, W: torch.Tensor) -> torch.Tensor:
+    """``Lin(N) W`` without forming ``Lin(N)`` (METHODS §1): ``diag(gamma)`` scales rows, the
+    LayerNorm centring ``P = I - 11^T/d`` subtracts the mean over rows. # W [H, d, dh] -> [H, d, dh]"""
+    W = W.double()
+    if norm.kind == "identity":
+        return W
+    if norm.kind not in ("layernorm", "rmsnorm"):
+        raise CompositionError(f"norm kind {norm.kind!r} is not supported.")
+    if norm.weight is not None:
+        W = W * norm.weight.double()[None, :, None]
+    return W - W.mean(1, keepdim=True) if norm.kind == "layernorm" else W
+
+
+def layer_factors(w: Weights, layer: int) -> HeadFactors:
+    """The norm-folded factors of every head of ``layer`` (METHODS §7)."""
+    attn = w.layers[layer].attn
+    norm = input_norm(w, layer)
+    return HeadFactors(fold_norm(norm, attn.W_V), attn.W_O.double().transpose(1, 2), fold_norm(norm, attn.W_Q),
+                       fold_norm(norm, attn.W_K))
+
+
+_RANK_RTOL = 1e-6  # singular values below 1e-6 s_max count as zero (resolvable from the Gram matrix)
+
+
+def _basis(X: torch.Tensor, G: torch.Tensor | None = None) -> tuple[torch.Tensor, np.ndarray]:
+    """Orthonormal basis of every head's factor from its ``[r, r]`` Gram matrix.
+
+    # X [n, d, r], G [n, r, r] = X^T X -> (U [n, d, r] zero-padded, rank [n])
+    Eigenvectors ``V`` of ``G`` with eigenvalues above ``(1e-6)^2 lambda_max`` give
+    ``U0 = X V s^-1``; one Cholesky re-orthonormalisation (``U = U0 L^-T``, ``L L^T = U0^T U0``)
+    removes the rounding that the Gram matrix's squared condition number leaves. Zero
+    columns of ``U`` add nothing to a projection kernel.
+    """
+    G = _gram(X) if G is None else G
+    lam, V = torch.linalg.eigh(G)  # [n, r] ascending, [n, r, r]
+    lam_max = lam[:, -1:].clamp_min(0.0)
+    keep = (lam > (_RANK_RTOL**2) * lam_max) & (lam_max > 0)  # [n, r]
+    scale = torch.where(keep, lam.clamp_min(torch.finfo(torch.float64).tiny).rsqrt(), torch.zeros_like(lam))
+    U0 = (X @ V) * scale[:, None, :]  # [n, d, r], zero columns where not kept
+    L = torch.linalg.cholesky(_gram(U0) + torch.diag_embed((~keep).double()))  # [n, r, r]
+    U = torch.linalg.solve_triangular(L, U0.transpose(1, 2), upper=False).transpose(1, 2)  # [n, d, r] = U0 L^-T
+    return U * keep[:, None, :], keep.sum(1).numpy().astype(np.int64)
+
+
+@dataclass(frozen=True)
+class _Prepared:
+    """One layer's heads, reduced to what the pair scores need (computed once per layer).
+
+    For ``Z = X M Y^T`` with Gram square roots ``S_X S_X^T = X^T X``, ``S_Y S_Y^T = Y^T Y``:
+    ``|Z|_F^2 = |S_X^T M S_Y|_F^2``. With ``M = W_O^U Y'^R`` this is ``|Z_U^T Z_R|_F^2`` where
+    ``Z_U = W_O^U^T S_X`` (writer side) and ``Z_R = Y'^R S_Y`` (responder side, per kind).
+    """
+
+    ov_norm2: torch.Tensor  # [n]  |W_OV|_F^2
+    qk_norm2: torch.Tensor  # [n]  |W_QK|_F^2
+    writer_z: torch.Tensor | None  # [n, d, dh]  W_O^T S(Lin W_V)
+    responder_z: dict  # "q" | "k" | "v" -> [n, d, dh]
+    bases: dict  # "out" | "q" | "k" | "v" -> (U [n, d, dh], rank [n]) of W_O^T, Lin W_Q, Lin W_K, Lin W_V
+
+
+def _prepare(f: HeadFactors, with_bases: bool = True) -> _Prepared:
+    G_in, G_out, G_q, G_k = _gram(f.ov_in), _gram(f.ov_out), _gram(f.q), _gram(f.k)  # [n, r, r]
+    S_in, S_out, S_q, S_k = (_sqrt_psd(G) for G in (G_in, G_out, G_q, G_k))
+    responder_z = {"q": f.q @ S_k,  # W_OV^U W_QK^R: middle W_O^U Lin W_Q^R, right factor Lin W_K^R
+                   "k": f.k @ S_q,  # W_OV^U (W_QK^R)^T: middle W_O^U Lin W_K^R, right factor Lin W_Q^R
+                   "v": f.ov_in @ S_out}  # W_OV^U W_OV^R: middle W_O^U Lin W_V^R, right factor W_O^R^T
+    bases = ({"out": _basis(f.ov_out, G_out), "q": _basis(f.q, G_q), "k": _basis(f.k, G_k),
+              "v": _basis(f.ov_in, G_in)} if with_bases else {})
+    return _Prepared((G_in * G_out).sum((-1, -2)), (G_q * G_k).sum((-1, -2)), f.ov_out @ S_in, responder_z, bases)
+
+
+def _ratio(num2: torch.Tensor, den2: torch.Tensor) -> torch.Tensor:
+    d = torch.sqrt(den2)
+    return torch.where(d > 0, torch.sqrt(num2.clamp_min(0.0)) / torch.where(d > 0, d, 1.0), torch.nan)
+
+
+def _pair_scores(writer: _Prepared, responder: _Prepared) -> tuple[dict, dict]:
+    """Composition scores and projection kernels of every writer head against every responder head.
+
+    # -> ({kind: [H_U, H_R]} scores, {kind: [H_U, H_R]} kernels)
+    """
+    den = {"q": responder.qk_norm2, "k": responder.qk_norm2, "v": responder.ov_norm2}
+    scores, kernels = {}, {}
+    for kind in KINDS:
+        num2 = _cross_frob2(writer.writer_z, responder.responder_z[kind])  # [HU, HR]
+        scores[kind] = _ratio(num2, writer.ov_norm2[:, None] * den[kind][None, :])
+        kernels[kind] = _cross_frob2(writer.bases["out"][0], responder.bases[kind][0])  # [HU, HR]
+    return scores, kernels
+
+
+def _layer_groups(first: int, L: int, H: int, max_heads: int = 64) -> list[list[int]]:
+    """Consecutive responder layers ``first .. L-1`` in groups of at most ``max_heads`` heads."""
+    per = max(1, max_heads // H)
+    return [list(range(l, min(L, l + per))) for l in range(first, L, per)]
+
+
+def composition_scores(writer: HeadFactors, responder: HeadFactors) -> dict[str, torch.Tensor]:
+    """Q-, K- and V-composition scores of every writer head against every responder head.
+
+    # -> {"q"|"k"|"v": [H_U, H_R]}
+    """
+    return _pair_scores(_prepare(writer), _prepare(responder))[0]
+
+
+def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int = BASELINE_SEED
+                         ) -> dict[str, tuple[float, float]]:
+    """Mean and standard deviation of each composition score for i.i.d. Gaussian factors.
+
+    Factors of the same shapes as one head's (``W_V``, ``W_Q``, ``W_K`` ``[d, dh]``, ``W_O``
+    ``[dh, d]``), standard normal entries, no norm; draw ``i``'s writer against draw ``i``'s
+    responder. # -> {"q"|"k"|"v": (mean, sd)}
+    """
+    if draws < 2:
+        raise CompositionError("--baseline-draws must be at least 2.")
+    rng = np.random.default_rng(int(seed))
+
+    def gauss():
+        return torch.from_numpy(rng.standard_normal((draws, d, dh)))  # [n, d, dh] float64
+
+    wp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
+    rp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
+    den = {"q": rp.qk_norm2, "k": rp.qk_norm2, "v": rp.ov_norm2}
+    out = {}
+    for kind in KINDS:
+        num2 = (wp.writer_z.transpose(1, 2) @ rp.responder_z[kind]).pow(2).sum((-1, -2))  # [n] paired
+        s = _ratio(num2, wp.ov_norm2 * den[kind])
+        out[kind] = (float(s.mean()), float(s.std()))
+    return out
+
+
+def orthonormal_basis(X: torch.Tensor) -> torch.Tensor:
+    """Orthonormal basis of the column space of ``X`` (numerical rank from its Gram matrix).
+
+    # X [d, r] -> [d, rank]
+    """
+    U, rank = _basis(X.double()[None])
+    return U[0][:, U[0].abs().sum(0) > 0][:, : int(rank[0])]
+
+
+def projection_kernel(Q1: torch.Tensor, Q2: torch.Tensor) -> float:
+    """``|Q1^T Q2|_F^2`` for orthonormal bases: the sum of squared cosines of the principal
+    angles (Hamm & Lee 2008). # Q1 [d, a], Q2 [d, b] -> float in [0, min(a, b)]"""
+    return float((Q1.T @ Q2).pow(2).sum())
+
+
+def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASELINE_SEED
+                       ) -> tuple[dict[str, np.ndarray], dict]:
+    """Composition scores and projection kernels of every pair, with their baselines.
+
+    # -> ({name: [L, H, L, H] or [L, H]}, attrs); pairs with responder layer <= writer
+    layer hold NaN. Per writer layer, later responder layers are handled in groups of up to
+    64 heads, one batched product per kind and group. Memory: about eight ``[H, d, dh]``
+    float64 tensors per layer (GPT-2 small: 0.45 GB).
+    """
+    L, H, d = w.n_layers, w.n_heads, w.d_model
+    shape = (L, H, L, H)
+    arrays = {f"{kind}_composition": np.full(shape, np.nan) for kind in KINDS}
+    arrays.update({f"projection_kernel_{kind}": np.full(shape, np.nan) for kind in KINDS})
+    arrays.update({f"kernel_random_mean_{kind}": np.full(shape, np.nan) for kind in KINDS})
+    prepared = [_prepare(layer_factors(w, layer)) for layer in range(L)]
+    arrays["write_dim"] = np.stack([p.bases["out"][1] for p in prepared])  # [L, H] rank of W_O
+    for kind in KINDS:
+        arrays[f"read_dim_{kind}"] = np.stack([p.bases[kind][1] for p in prepared])  # [L, H]
+    for lU in range(L - 1):
+        for group in _layer_groups(lU + 1, L, H):
+            later = [prepared[l] for l in group]
+            responders = _Prepared(
+                torch.cat([p.ov_norm2 for p in later]), torch.cat([p.qk_norm2 for p in later]), None,
+                {kind: torch.cat([p.responder_z[kind] for p in later]) for kind in KINDS},
+                {kind: (torch.cat([p.bases[kind][0] for p in later]), None) for kind in KINDS})
+            scores, kernels = _pair_scores(prepared[lU], responders)  # {kind: [H, len(group) H]}
+            sl = slice(group[0], group[-1] + 1)
+            for kind in KINDS:
+                arrays[f"{kind}_composition"][lU, :, sl, :] = scores[kind].numpy().reshape(H, len(group), H)
+                arrays[f"projection_kernel_{kind}"][lU, :, sl, :] = kernels[kind].numpy().reshape(H, len(group), H)
+                dims = np.einsum("a,lb->alb", arrays["write_dim"][lU], arrays[f"read_dim_{kind}"][sl])  # [H, n, H]
+                arrays[f"kernel_random_mean_{kind}"][lU, :, sl, :] = dims / d
+    base = composition_baseline(d, w.d_head, draws, seed)
+    attrs = {"baseline_draws": int(draws), "baseline_seed": int(seed), "d_model": d, "d_head": w.d_head}
+    for kind in KINDS:
+        attrs[f"baseline_{kind}_mean"], attrs[f"baseline_{kind}_sd"] = base[kind]
+    return arrays, attrs
+
+
+# ---------------------------------------------------------------------------
+# Storage
+# ---------------------------------------------------------------------------
+
+@dataclass
+class HeadData:
+    """``/heads`` and ``/model_space`` in memory: plain NumPy arrays and their attributes."""
+
+    path: Path
+    heads: dict[str, np.ndarray]  # [L, H, ...]
+    heads_attrs: dict
+    model_space: dict[str, np.ndarray]  # [L, H, L, H] (and [L, H] dims)
+    model_space_attrs: dict
+
+    def baseline(self, kind: str) -> tuple[float, float]:
+        """(mean, sd) of the Gaussian baseline of the ``kind`` ("q", "k", "v") composition score."""
+        a = self.model_space_attrs
+        return float(a[f"baseline_{kind}_mean"]), float(a[f"baseline_{kind}_sd"])
+
+    def table(self) -> dict[str, np.ndarray]:
+        """A tidy table of heads: one 1-D array per column (pandas-ready)."""
+        L, H = self.heads["label"].shape
+        layer, head = np.divmod(np.arange(L * H), H)
+        out = {"layer": layer, "head": head, "head_label": np.array([f"{a}.{b}" for a, b in zip(layer, head)])}
+        ks = list(self.heads_attrs.get("k", []))
+        for name, data in self.heads.items():
+            flat = data.reshape(L * H, *data.shape[2:])
+            if flat.ndim == 1:
+                out[name] = flat
+            elif name in ("top_share", "bottom_share"):
+                for j, k in enumerate(ks):
+                    out[f"{name}_{k}"] = flat[:, j]
+        out["label_word"] = np.array([HEAD_LABEL_WORDS.get(int(v), "not computed") for v in out["label"]])
+        return out
+
+
+def head_attrs(w: Weights, options: TableOptions, ks, fdr: float, min_effect: float,
+               fingerprint: str | None = None) -> dict:
+    return {
+        "table": options.kind,
+        "position": "none" if options.position is None else str(options.position),
+        "k": [int(k) for k in ks],
+        "fdr": float(fdr),
+        "min_effect": float(min_effect),
+        "keys_per_row": int(w.W_U.shape[1]),
+        "histogram_bins": HIST_BINS,
+        "weights_fingerprint": fingerprint or w.fingerprint(),
+        "label_meaning": "+1 copying, -1 suppressing, 0 neutral, -128 not computed (OV token matrix diagonal, METHODS 5)",
+        "label_fill": LABEL_NOT_COMPUTED,
+    }
+
+
+def compute_head_data(w: Weights, table: torch.Tensor, options: TableOptions, ks=DEFAULT_K,
+                      fdr: float = DEFAULT_FDR, min_effect: float = DEFAULT_MIN_EFFECT,
+                      draws: int = BASELINE_DRAWS, progress=None, fingerprint: str | None = None,
+                      heads: list[tuple[int, int]] | None = None) -> tuple[dict, dict, dict, dict]:
+    """Everything of ``/heads`` and ``/model_space``: (heads, heads_attrs, model_space, model_space_attrs).
+
+    Head profiles for ``heads`` (default every head); model-space scores for every pair.
+    """
+    profiles = head_profiles(w, table, ks, fdr, min_effect, progress=progress, heads=heads)
+    ms, ms_attrs = model_space_scores(w, draws)
+    return profiles, head_attrs(w, options, ks, fdr, min_effect, fingerprint), ms, ms_attrs
+
+
+def _write_groups(f, heads, heads_attrs, ms, ms_attrs) -> None:
+    from ..store.scanfile import _attr
+
+    for name, data, attrs in (("heads", heads, heads_attrs), ("model_space", ms, ms_attrs)):
+        if name in f:
+            del f[name]
+        group = f.create_group(name)
+        for key, value in attrs.items():
+            group.attrs[key] = _attr(value)
+        for key, value in data.items():
+            group.create_dataset(key, data=value)
+
+
+def write_heads_file(path: str | os.PathLike, w: Weights, table: torch.Tensor, options: TableOptions,
+                     ks=DEFAULT_K, fdr: float = DEFAULT_FDR, min_effect: float = DEFAULT_MIN_EFFECT,
+                     draws: int = BASELINE_DRAWS, overwrite: bool = False, progress=None,
+                     heads: list[tuple[int, int]] | None = None) -> Path:
+    """Compute head profiles (of ``heads``, default all) and model-space scores and write
+    them as a separate heads file."""
+    import h5py
+
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise CompositionError(f"{path} exists already; pass --overwrite to replace it.")
+    data = compute_head_data(w, table, options, ks, fdr, min_effect, draws, progress, heads=heads)
+    with _atomic(path, copy=False) as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = HEADS_FORMAT
+            f.attrs["format_version"] = HEADS_FORMAT_VERSION
+            f.attrs["checkpoint"] = w.source
+            f.attrs["n_layers"], f.attrs["n_heads"] = w.n_layers, w.n_heads
+            _write_groups(f, *data)
+    return path
+
+
+def add_to_scan(scan_path: str | os.PathLike, w: Weights, table: torch.Tensor | None = None,
+                draws: int = BASELINE_DRAWS, progress=None, all_heads: bool = False) -> Path:
+    """Add (or replace) the ``/heads`` and ``/model_space`` groups of a finished scan file.
+
+    Head profiles cover the heads of the scanned pairs (writers and responders; every head
+    with ``all_heads``), so a restricted quick scan stays quick; model-space scores cover
+    every pair. Uses the scan's own token table, k, FDR and effect threshold, and refuses
+    weights whose fingerprint differs from the scan's. ``table`` may pass the already-built
+    token table. The file is rewritten atomically (copy, add, rename).
+    """
+    import h5py
+
+    from ..store.scanfile import load_scan
+
+    scan = load_scan(scan_path)
+    a = scan.attrs
+    fingerprint = w.fingerprint()
+    if a.get("weights_fingerprint") not in (None, fingerprint):
+        raise CompositionError(f"the checkpoint's weights differ from those {scan_path} was computed from.")
+    position = a.get("position", "none")
+    position = None if position in (None, "none") else ("mean" if position == "mean" else int(position))
+    options = TableOptions(a.get("table", "attn0-mlp0"), position)
+    if table is None:
+        table = token_table(w, options)  # [V, d]
+    idx = np.argwhere(scan.done)  # [P, 4]
+    heads = None if all_heads else sorted({(int(r[0]), int(r[1])) for r in idx} | {(int(r[2]), int(r[3])) for r in idx})
+    data = compute_head_data(w, table, options, tuple(a.get("k", DEFAULT_K)), float(a.get("fdr", DEFAULT_FDR)),
+                             float(a.get("min_effect", DEFAULT_MIN_EFFECT)), draws, progress, fingerprint, heads)
+    path = Path(scan_path)
+    with _atomic(path, copy=True) as tmp:
+        with h5py.File(tmp, "a") as f:
+            _write_groups(f, *data)
+    return path
+
+
+def load_heads(path: str | os.PathLike) -> HeadData | None:
+    """Read ``/heads`` and ``/model_space`` from a scan file or a heads file (None if absent)."""
+    import h5py
+
+    from ..store.scanfile import _unattr
+
+    path = Path(path)
+    if not path.is_file():
+        raise CompositionError(f"file {path} does not exist.")
+    try:
+        with h5py.File(path, "r") as f:
+            if "heads" not in f or "model_space" not in f:
+                return None
+            groups = []
+            for name in ("heads", "model_space"):
+                g = f[name]
+                groups.append({k: g[k][()] for k in g})
+                groups.append({k: _unattr(v) for k, v in g.attrs.items()})
+    except OSError as exc:
+        raise CompositionError(f"{path} is not a readable HDF5 file ({exc}).") from None
+    for attrs in (groups[1], groups[3]):
+        for key, value in attrs.items():
+            if isinstance(value, str) and value.startswith("["):
+                import json
+
+                attrs[key] = json.loads(value)
+    return HeadData(path, groups[0], groups[1], groups[2], groups[3])
+
+
+class _atomic:
+    """Context manager yielding a temporary path beside ``path``, renamed onto it on success."""
+
+    def __init__(self, path: Path, copy: bool):
+        self.path, self.copy = Path(path), copy
+
+    def __enter__(self) -> str:
+        directory = self.path.parent if str(self.path.parent) else Path(".")
+        if not directory.is_dir():
+            raise CompositionError(f"output directory {directory} does not exist.")
+        try:
+            fd, self.tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".partial", dir=directory)
+            os.close(fd)
+            if self.copy:
+                shutil.copyfile(self.path, self.tmp)
+        except OSError as exc:
+            raise CompositionError(f"cannot write {self.path} ({exc.strerror}).") from None
+        return self.tmp
+
+    def __exit__(self, kind, exc, tb):
+        if kind is None:
+            try:
+                os.replace(self.tmp, self.path)
+                return False
+            except OSError as err:
+                exc = err
+                kind = OSError
+        try:
+            os.remove(self.tmp)
+        except OSError:
+            pass
+        if kind is not None and issubclass(kind, OSError):
+            raise CompositionError(f"cannot write {self.path} ({getattr(exc, 'strerror', None) or exc}).") from None
+        return False

@@ -1,0 +1,195 @@
+"""From labels to predictions: compensation per pair (METHODS §6) and the shortlist.
+
+Three signs per pair ``(U, R)``: the writer's own effect on the written token's logit
+``s_U`` (+1 copying, -1 suppressing: the writer's OV label, METHODS §5), the responder's
+response ``s_QK`` (+1 attention-raising, -1 attention-lowering: the pair's label, METHODS
+§4) and the responder's write ``s_R`` (+1 copying, -1 suppressing). When all three are
+non-zero, ``s_U s_QK s_R < 0`` predicts that the responder works against what the writer
+does to the token's logit (self-repair): **compensating**; ``> 0`` **reinforcing**. A
+neutral sign on any of the three predicts nothing (**none**).
+
+The shortlist names candidate **suppressor heads** (suppressing, and attention-raising
+towards at least one writer) and **back-up heads** (copying, and attention-lowering towards
+at least one writer), each with the writers it responds to.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .heads import HEAD_LABEL_WORDS, HeadData
+from ..store.scanfile import Scan
+from ..score.stats import LABEL_NOT_COMPUTED
+
+COMPENSATING, NONE, REINFORCING = -1, 0, 1
+PREDICTION_WORDS = {COMPENSATING: "compensating", NONE: "none", REINFORCING: "reinforcing",
+                    LABEL_NOT_COMPUTED: "not computed"}
+RESPONSE_WORDS = {1: "attention-raising", -1: "attention-lowering", 0: "neutral",
+                  LABEL_NOT_COMPUTED: "not computed"}
+SHORTLIST_KINDS = {"suppressor": (+1, -1), "back-up": (-1, +1)}  # kind: (s_QK, s_R)
+
+
+def compensation(pair_labels: np.ndarray, head_labels: np.ndarray) -> dict[str, np.ndarray]:
+    """The three signs and the prediction of every pair.
+
+    # pair_labels [L, H, L, H] int8 (+1/-1/0, LABEL_NOT_COMPUTED), head_labels [L, H] int8
+    # -> {"s_writer", "s_response", "s_responder", "prediction"}: [L, H, L, H] int8
+    ``prediction`` is -1 compensating, +1 reinforcing, 0 none, LABEL_NOT_COMPUTED where the
+    pair was not scanned or a head has no profile.
+    """
+    pair_labels = np.asarray(pair_labels)
+    head_labels = np.asarray(head_labels)
+    L, H = head_labels.shape
+    s_writer = np.broadcast_to(head_labels[:, :, None, None], (L, H, L, H)).astype(np.int8)
+    s_responder = np.broadcast_to(head_labels[None, None, :, :], (L, H, L, H)).astype(np.int8)
+    s_response = pair_labels.astype(np.int8)
+    computed = ((s_response != LABEL_NOT_COMPUTED) & (s_writer != LABEL_NOT_COMPUTED)
+                & (s_responder != LABEL_NOT_COMPUTED))
+    product = np.where(computed, s_writer.astype(np.int64) * s_response * s_responder, 0)
+    prediction = np.sign(product).astype(np.int8)
+    prediction[~computed] = LABEL_NOT_COMPUTED
+    return {"s_writer": s_writer, "s_response": s_response, "s_responder": s_responder,
+            "prediction": prediction}
+
+
+def pair_table(scan: Scan, heads: HeadData | None = None) -> dict[str, np.ndarray]:
+    """The scan's tidy table of computed pairs, extended with model-space scores, the three
+    signs and the compensation prediction when head data is given. # -> {column: [P]}"""
+    table = scan.pairs()
+    if heads is None:
+        return table
+    idx = np.argwhere(scan.done)  # [P, 4]
+    sel = tuple(idx.T)
+    ms = heads.model_space
+    for name in ("q_composition", "k_composition", "v_composition",
+                 "projection_kernel_q", "projection_kernel_k", "projection_kernel_v",
+                 "kernel_random_mean_q", "kernel_random_mean_k", "kernel_random_mean_v"):
+        table[name] = ms[name][sel]
+    for kind in ("q", "k", "v"):
+        mean, sd = heads.baseline(kind)
+        table[f"{kind}_composition_z"] = (ms[f"{kind}_composition"][sel] - mean) / sd
+    comp = compensation(scan.label, heads.heads["label"])
+    for name, data in comp.items():
+        table[name] = data[sel]
+    table["prediction_word"] = np.array([PREDICTION_WORDS[int(v)] for v in table["prediction"]])
+    table["response_word"] = np.array([RESPONSE_WORDS[int(v)] for v in table["label"]])
+    return table
+
+
+@dataclass
+class Candidate:
+    """One shortlisted head with the writers it responds to, strongest first."""
+
+    kind: str  # "suppressor" or "back-up"
+    head: tuple[int, int]
+    ov_mean_percentile: float
+    ov_q_value: float
+    copying_score: float
+    writers: list[dict] = field(default_factory=list)  # one dict of evidence per writer
+    strength: float = 0.0
+
+    @property
+    def label(self) -> str:
+        return f"{self.head[0]}.{self.head[1]}"
+
+
+def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
+    """Candidate suppressor and back-up heads, ranked.
+
+    Rank key: the smaller of the two effect sizes that put the head on the list, the
+    head's own ``|OV mean percentile - 1/2|`` and the pair ``|mean percentile - 1/2|`` of its
+    strongest writer (both must be large for a strong candidate); ties by q-value.
+    """
+    head_label = heads.heads["label"]  # [L, H]
+    ov_mp = heads.heads["mean_percentile"]
+    comp = compensation(scan.label, head_label)
+    ms = heads.model_space
+    ks = list(scan.k)
+    out: list[Candidate] = []
+    for kind, (s_qk, s_r) in SHORTLIST_KINDS.items():
+        for lR, hR in np.argwhere(head_label == s_r):
+            idx = np.argwhere(scan.label[:, :, lR, hR] == s_qk)  # [n, 2] writers
+            if idx.size == 0:
+                continue
+            cand = Candidate(kind, (int(lR), int(hR)), float(ov_mp[lR, hR]), float(heads.heads["q_value"][lR, hR]),
+                             float(heads.heads["eigen_copying_score"][lR, hR]))
+            for lU, hU in idx:
+                i = (lU, hU, lR, hR)
+                q_mean, q_sd = heads.baseline("q")
+                cand.writers.append({
+                    "writer": f"{lU}.{hU}",
+                    "mean_percentile": float(scan.mean_percentile[i]),
+                    **{f"top_share_{k}": float(scan.top_share[i][j]) for j, k in enumerate(ks)},
+                    **{f"bottom_share_{k}": float(scan.bottom_share[i][j]) for j, k in enumerate(ks)},
+                    "q_value": float(scan.q_value[i]),
+                    "writer_ov": HEAD_LABEL_WORDS.get(int(head_label[lU, hU]), "not computed"),
+                    "prediction": PREDICTION_WORDS[int(comp["prediction"][i])],
+                    "q_composition": float(ms["q_composition"][i]),
+                    "q_composition_z": float((ms["q_composition"][i] - q_mean) / q_sd),
+                    "projection_kernel_q": float(ms["projection_kernel_q"][i]),
+                    "kernel_random_mean_q": float(ms["kernel_random_mean_q"][i]),
+                })
+            cand.writers.sort(key=lambda r: (-abs(r["mean_percentile"] - 0.5), r["q_value"]))
+            cand.strength = min(abs(cand.ov_mean_percentile - 0.5), abs(cand.writers[0]["mean_percentile"] - 0.5))
+            out.append(cand)
+    out.sort(key=lambda c: (-c.strength, c.ov_q_value, c.head))
+    return out
+
+
+def shortlist_rows(candidates: list[Candidate]) -> list[dict]:
+    """One flat row per (candidate, writer), for CSV files and notebooks."""
+    rows = []
+    for rank, c in enumerate(candidates, 1):
+        for r in c.writers:
+            rows.append({"rank": rank, "kind": c.kind, "head": c.label,
+                         "head_ov": HEAD_LABEL_WORDS[-1 if c.kind == "suppressor" else 1],
+                         "ov_mean_percentile": c.ov_mean_percentile, "ov_q_value": c.ov_q_value,
+                         "copying_score": c.copying_score, **r})
+    return rows
+
+
+def pair_prediction(scan: Scan, heads: HeadData, writer: tuple[int, int], responder: tuple[int, int]) -> dict:
+    """The scan's label, the three signs and the prediction of one pair (words)."""
+    i = (*writer, *responder)
+    comp = compensation(scan.label, heads.heads["label"])
+    return {"response": RESPONSE_WORDS[int(scan.label[i])],
+            "q_value": float(scan.q_value[i]),
+            "s_writer": int(comp["s_writer"][i]), "s_response": int(comp["s_response"][i]),
+            "s_responder": int(comp["s_responder"][i]),
+            "prediction": PREDICTION_WORDS[int(comp["prediction"][i])]}
+
+
+def mediation_rows(full, parts: dict) -> list[dict]:
+    """How much of each labelled query-side pair survives in each mediation part (METHODS §3b).
+
+    ``full`` is the query-side scan of the whole write, ``parts`` maps ``unembed``/``rest``
+    to the scans of those parts (same checkpoint and selection). One row per pair labelled on
+    the full write: its top-k share (bottom-k for attention-lowering pairs, k the largest of
+    the scan) in the full write and in each part, and the fraction of the write's squared
+    norm each part carries. Rank statistics are blind to magnitude: read a part's share
+    beside its write fraction.
+    """
+    from ..errors import CompositionError
+
+    for name, part in parts.items():
+        a = part.attrs
+        if a.get("side", "query") != "query" or name not in ("unembed", "rest") or a.get("query_part") != name:
+            raise CompositionError(f"{part.path} is not a scan of a query part (--query-part unembed or rest).")
+        if a.get("weights_fingerprint") != full.attrs.get("weights_fingerprint"):
+            raise CompositionError(f"{part.path} was computed from other weights than {full.path}.")
+    k = int(full.k[-1])
+    rows = []
+    for ix in np.argwhere((full.label == 1) | (full.label == -1)):
+        ix = tuple(int(i) for i in ix)
+        which = "top_share" if full.label[ix] == 1 else "bottom_share"
+        row = {"writer": f"{ix[0]}.{ix[1]}", "responder": f"{ix[2]}.{ix[3]}",
+               "response": RESPONSE_WORDS[int(full.label[ix])], "share": f"{which.split('_')[0]}-{k}",
+               "full": float(getattr(full, which)[ix][-1])}
+        for name, part in parts.items():
+            done = bool(part.done[ix])
+            row[name] = float(getattr(part, which)[ix][-1]) if done else float("nan")
+            row[f"{name}_write_fraction"] = float(part.write_fraction[ix]) if done else float("nan")
+        rows.append(row)
+    return rows

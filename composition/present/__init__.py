@@ -1,0 +1,1 @@
+"""Present: the command line, terminal tables and the HTML report; nothing here computes results."""

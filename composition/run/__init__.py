@@ -1,0 +1,1 @@
+"""Run: the resumable scan driver, work units, Dask execution, progress, interrupts and the plan."""

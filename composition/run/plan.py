@@ -1,0 +1,203 @@
+"""``composition plan``: what a scan will cost on this machine, before it runs.
+
+The estimate adds up the stages of a scan, each timed here for a few seconds:
+loading the checkpoint (timed for real), the token table and the per-layer writer values
+and responder keys (timed on the first rows of the vocabulary and scaled to all of it),
+per pair the query factor and per responder layer the packed keys (timed on factors of
+the model's size), and the ranks themselves: rows x vocabulary entries at the rate the
+ranks kernel reaches on Gaussian factors of the model's vocabulary and head width.
+
+A finished scan also profiles the OV circuit of every head it scanned (``composition.interpret.heads``):
+one full-vocabulary diagonal rank per head, counted at the same kernel rate.
+
+Peak memory: the process after loading the checkpoint (measured), plus the token table,
+one layer of writer values and of responder keys (float64), one layer of packed keys and
+one pair's working set. Sequential scans (``--until-ci``) are estimated for pairs without
+effect (mean percentile 1/2, null shares); pairs with a large effect stop at least as early,
+pairs near a decision boundary may read up to every row (the maximum is printed too).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import resource
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from ..extract import load_weights
+from ..compose.factors import query_side, responder_keys, writer_values
+from ..score.ranks import RowProduct, kernel_available, kernel_rate_entries, prepare_right
+from ..score.sampling import expected_rows
+from ..score.stats import summarise_many
+from ..extract.tables import TableOptions, token_table
+from ..extract.weights import Weights
+
+_SUBSET = 2048
+
+
+@dataclass
+class Plan:
+    checkpoint: str
+    vocab: int
+    d_head: int
+    pairs: int
+    units: int
+    rows_per_pair: int
+    rows_most: int
+    looks_per_pair: int
+    entries: float
+    rate: float  # entries per second of the ranks kernel here
+    engine: str
+    precision: str
+    seconds: dict  # stage -> estimated seconds
+    peak_bytes: int
+
+    @property
+    def total_seconds(self) -> float:
+        return float(sum(self.seconds.values()))
+
+    def describe(self) -> str:
+        s = self.seconds
+        lines = [
+            f"checkpoint         {self.checkpoint}",
+            f"pairs              {self.pairs} ({self.units} work units)",
+            f"rows per pair      {self.rows_per_pair} of {self.vocab}"
+            + (f" (expected; at most {self.rows_most})" if self.rows_most != self.rows_per_pair else ""),
+            f"entries            {self.entries:.3e} ({self.vocab} keys per row, head width {self.d_head})",
+            f"ranks kernel       {self.rate / 1e9:.3f} G entries/s here ({self.engine}, {self.precision})",
+            f"estimated time     {_duration(self.total_seconds)}"
+            f"  (ranks {_duration(s['ranks'])}, factors {_duration(s['factors'] + s['table'])}, "
+            f"per pair {_duration(s['per_pair'])}, head profiles {_duration(s['heads'])}, "
+            f"load {_duration(s['load'] + s['write'])})",
+            f"peak memory        {self.peak_bytes / 2**30:.2f} GiB",
+        ]
+        return "\n".join(lines)
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.1f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.1f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def _rss_bytes() -> int:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def _timed(fn, *args):
+    t = time.perf_counter()
+    out = fn(*args)
+    return out, time.perf_counter() - t
+
+
+def _best_of(n: int, fn, *args) -> float:
+    """Shortest of ``n`` timings of a cheap step (a shared machine adds long stalls)."""
+    return min(_timed(fn, *args)[1] for _ in range(n))
+
+
+def _weights_bytes(w: Weights) -> int:
+    total = 0
+    for f in dataclasses.fields(w):
+        v = getattr(w, f.name)
+        total += _tensor_bytes(v)
+    return total
+
+
+def _tensor_bytes(v) -> int:
+    if isinstance(v, torch.Tensor):
+        return v.numel() * v.element_size()
+    if dataclasses.is_dataclass(v) and not isinstance(v, type):
+        return sum(_tensor_bytes(getattr(v, f.name)) for f in dataclasses.fields(v))
+    if isinstance(v, (list, tuple)):
+        return sum(_tensor_bytes(x) for x in v)
+    return 0
+
+
+def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
+    """Estimate the wall time and peak memory of ``run_scan(checkpoint, ..., options)``."""
+    from .scan import scan_pairs, work_units
+
+    options.validate()
+    w, t_load = (checkpoint, 0.0) if isinstance(checkpoint, Weights) else _timed(load_weights, checkpoint, options.family, options.layout)
+    rss_loaded = _rss_bytes()
+    pairs = scan_pairs(w, options)
+    units = work_units(pairs)
+    V, H, dh, d = w.vocab_size, w.n_heads, w.d_head, w.d_model
+
+    # token table and per-layer factors, on the first rows of the vocabulary
+    n_sub = min(V, _SUBSET)
+    w_sub = dataclasses.replace(w, W_E=w.W_E[:n_sub])
+    T_sub, t_table = _timed(token_table, w_sub, TableOptions(options.table, options.position))
+    _, t_values = _timed(writer_values, w_sub, T_sub, units[0].writer[0])
+    _, t_keys = _timed(responder_keys, w_sub, T_sub, units[0].responder_layer)
+    scale = V / n_sub
+    value_builds, key_builds = _factor_builds(units)
+    _, t_fp = _timed(w.fingerprint)  # the scan file records it
+
+    # per pair: query factor; per responder layer: packed keys (on factors of the model's size)
+    g = torch.Generator().manual_seed(0)
+    A = torch.randn(V, dh, generator=g, dtype=torch.float64)
+    C = torch.randn(dh, dh, generator=g, dtype=torch.float64)
+    t_prep = _best_of(3, prepare_right, A, options.precision, options.device, options.engine)
+
+    sampling = options.sampling()
+    rows, rows_most = expected_rows(V, sampling, options.min_effect, options.k)
+    looks = sampling.schedule(V)
+    looks_used = max(1, sum(1 for n in looks if n <= rows))
+    if options.orientation == "row":  # only the evaluated rows of the query factor are built
+        idx = np.arange(min(rows, V))
+        t_left = _best_of(3, lambda: RowProduct(A, C)[idx])
+    else:
+        t_left = _best_of(3, query_side, A, C, A, options.orientation)
+    # the statistics of a unit's pairs are summarised together at each look
+    demo = [np.random.default_rng(i).integers(0, V, rows).astype(np.float64) for i in range(H)]
+    t_unit_summary = _best_of(2, summarise_many, demo, V, tuple(options.k), V, 0.05, len(looks))
+
+    rate = kernel_rate_entries(options.precision, seconds=max(0.5, calibrate_seconds), V=V, r=dh,
+                               engine=options.engine)
+    n_pairs = len(pairs)
+    profiled = {u for u, _ in pairs} | {r for _, r in pairs}
+    entries = float(n_pairs) * rows * V
+    seconds = {
+        "load": t_load,
+        "table": t_table * scale,
+        "factors": (t_values * value_builds + t_keys * key_builds) * scale
+        + (t_prep * H * key_builds if options.orientation == "row" else t_prep * n_pairs * looks_used),
+        "per_pair": n_pairs * t_left + len(units) * looks_used * t_unit_summary,
+        "ranks": entries / rate,
+        "write": t_fp,
+        # a finished scan adds the OV profiles of its writers and responders (composition.interpret.heads):
+        # one full V x V diagonal rank per head, a fresh token table and one value build per layer
+        "heads": len(profiled) * float(V) * V / rate + t_table * scale
+        + len({h[0] for h in profiled}) * t_values * scale,
+    }
+    f64 = 8 * V
+    per_pair = V * dh * 8 + rows * dh * (8 + 8 + 4 + 4 + (8 if options.precision == "bf16-checked" else 0)) \
+        + (1 << 15) * dh * 8 * 3
+    prepared = H * V * dh * 4 * (2 if options.precision == "bf16-checked" else 1)
+    table_work = 4096 * (4 * d) * 8 * 3
+    peak = rss_loaded + f64 * d + 2 * H * f64 * dh + max(prepared + per_pair, table_work)
+    engine = "fused C kernel" if (options.engine != "torch" and options.device == "cpu" and kernel_available()) \
+        else "plain torch"
+    return Plan(str(getattr(w, "source", checkpoint)), V, dh, n_pairs, len(units), rows, rows_most, looks_used,
+                entries, rate, engine, options.precision, seconds, int(peak))
+
+
+def _factor_builds(units) -> tuple[int, int]:
+    """How often the scan builds writer values and responder keys (it keeps one layer of each)."""
+    values = keys = 0
+    last_v = last_k = None
+    for u in units:
+        if u.writer[0] != last_v:
+            values, last_v = values + 1, u.writer[0]
+        if u.responder_layer != last_k:
+            keys, last_k = keys + 1, u.responder_layer
+    return values, keys
+
+
+__all__ = ["Plan", "plan_scan"]

@@ -1,0 +1,647 @@
+"""A scan: every selected (writer, responder) pair, ranked, summarised, labelled, saved.
+
+Work is ordered so each factor is built once: per writer layer the writer values ``A_U``;
+per responder layer the keys ``K_R``; per pair only the ``[dh, dh]`` middle and the
+``[V, dh]`` query factor.
+
+The driver (``run_scan``) commits every work unit to the scan file's journal as soon as it
+is computed, so a killed scan resumes where it stopped (docs/long-runs.md); units run in
+this process or on a Dask cluster (``composition.run.cluster``), and only this process writes
+the file. Labels need the false discovery rate over all pairs: they are computed once,
+when every unit is committed.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import os
+import re
+import time
+from dataclasses import asdict, dataclass, field, replace
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from .._version import __version__
+from ..extract import load_weights
+from ..errors import CompositionError
+from ..compose.factors import ORIENTATIONS, query_middles, responder_keys, writer_values
+from ..compose.factors import (QUERY_PARTS, SIDES, key_middles, query_part_side, responder_queries,
+                      responder_readouts, unembed_coefficients, unembed_directions, unembed_queries,
+                      value_middles, write_fraction)
+from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
+from .progress import ScanProgress
+from ..score.ranks import DEVICES, PRECISIONS, RowProduct, check_device, prepare_right
+from ..extract.rotary import offsets_rotation
+from ..score.sampling import DEFAULT_FIRST_ROWS, Sampling, evaluate_pairs
+from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, Scan, ScanStore, ScanWriteError,
+                       empty_pairs, journal_path, load_scan, read_scan_file)
+from ..score.stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels
+from ..extract.tables import TABLES, TableOptions, token_table
+from ..extract.weights import Weights
+
+Head = tuple[int, int]
+
+
+@dataclass(frozen=True)
+class ScanOptions:
+    """Everything that changes a scan's numbers, plus the head selection."""
+
+    table: str = "attn0-mlp0"
+    position: int | str | None = None
+    orientation: str = "row"
+    k: tuple[int, ...] = DEFAULT_K
+    fdr: float = DEFAULT_FDR
+    min_effect: float = DEFAULT_MIN_EFFECT
+    writers: str | None = None  # e.g. "1,2.3": whole layers or layer.head labels
+    responders: str | None = None
+    block_rows: int = 256
+    rotary_offsets: tuple[int, int] | None = None  # (A, B): mean rotation over delta in [A, B]; None: 0 for rotary models
+    family: str | None = None  # reader override (not a result option: the weights fingerprint covers it)
+    layout: str | None = None  # layout file for an unknown family (likewise)
+    # how the ranks are computed (never changes a number: not in the fingerprint)
+    precision: str = "fp32"  # fp32 | bf16-checked
+    device: str = "cpu"  # cpu | cuda
+    engine: str = "auto"  # auto | kernel | torch
+    # which rows are evaluated (in the fingerprint when sampling)
+    rows: int | None = None  # uniform sample without replacement of this many rows
+    seed: int = 0
+    until_ci: float | None = None  # sequential looks until every share's interval is this narrow
+    first_rows: int = DEFAULT_FIRST_ROWS
+
+    def sampling(self) -> Sampling:
+        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
+    # which path and which part of the write (METHODS §3, §3b; in the fingerprint)
+    side: str = "query"  # query | key | value (METHODS §3, §3b)
+    query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
+
+    def validate(self) -> None:
+        if self.table not in TABLES:
+            raise CompositionError(f"--table {self.table!r} is not one of: {', '.join(TABLES)}.")
+        if self.orientation not in ORIENTATIONS:
+            raise CompositionError(f"--orientation {self.orientation!r} is not one of: {', '.join(ORIENTATIONS)}.")
+        if not self.k or any(int(k) < 1 for k in self.k):
+            raise CompositionError("--k needs one or more positive integers, e.g. 1,5,10.")
+        if not 0 < self.fdr < 1:
+            raise CompositionError("--fdr must lie strictly between 0 and 1.")
+        if not 0 <= self.min_effect < 0.5:
+            raise CompositionError("--min-effect must lie in [0, 0.5).")
+        if self.rotary_offsets is not None:
+            a, b = self.rotary_offsets
+            if not 0 <= int(a) <= int(b):
+                raise CompositionError(f"--rotary-offsets {a}:{b} must satisfy 0 <= A <= B.")
+        if self.precision not in PRECISIONS:
+            raise CompositionError(f"--precision {self.precision!r} is not one of: {', '.join(PRECISIONS)}.")
+        if self.device not in DEVICES:
+            raise CompositionError(f"--device {self.device!r} is not one of: {', '.join(DEVICES)}.")
+        check_device(self.device)
+        self.sampling().validate()
+        self._validate_side()
+
+    def _validate_side(self) -> None:
+        if self.side not in SIDES:
+            raise CompositionError(f"--side {self.side!r} is not one of: {', '.join(SIDES)}.")
+        if self.query_part not in QUERY_PARTS:
+            raise CompositionError(f"--query-part {self.query_part!r} is not one of: {', '.join(QUERY_PARTS)}.")
+        if self.query_part != "full" and self.side != "query":
+            raise CompositionError(f"--query-part {self.query_part} applies to --side query only, not --side {self.side}.")
+        if self.side == "value" and self.orientation != "row":
+            raise CompositionError("--side value ranks within rows only (fixed written token); use --orientation row.")
+
+
+@dataclass
+class ScanSummary:
+    path: Path
+    pairs: int
+    labelled: list[dict] = field(default_factory=list)
+
+
+def parse_heads(spec: str | None, n_layers: int, n_heads: int, option: str) -> list[Head]:
+    """``"1,2.3"`` -> every head of layer 1 and head 3 of layer 2; None -> every head."""
+    if spec is None or spec.strip() == "":
+        return [(l, h) for l in range(n_layers) for h in range(n_heads)]
+    heads: set[Head] = set()
+    for item in spec.split(","):
+        item = item.strip()
+        m = re.fullmatch(r"(\d+)(?:\.(\d+))?", item)
+        if not m:
+            raise CompositionError(f"{option} item {item!r} is neither a layer (4) nor a head label (4.3).")
+        layer = int(m.group(1))
+        if layer >= n_layers:
+            raise CompositionError(f"{option} names layer {layer}, but the model has layers 0-{n_layers - 1}.")
+        if m.group(2) is None:
+            heads.update((layer, h) for h in range(n_heads))
+        else:
+            head = int(m.group(2))
+            if head >= n_heads:
+                raise CompositionError(f"{option} names head {item}, but layers have heads 0-{n_heads - 1}.")
+            heads.add((layer, head))
+    return sorted(heads)
+
+
+def scan_pairs(w: Weights, options: ScanOptions) -> list[tuple[Head, Head]]:
+    """Every (writer, responder) of the selection with responder layer > writer layer."""
+    writers = parse_heads(options.writers, w.n_layers, w.n_heads, "--writers")
+    responders = parse_heads(options.responders, w.n_layers, w.n_heads, "--responders")
+    pairs = [(u, r) for u in writers for r in responders if r[0] > u[0]]
+    if not pairs:
+        raise CompositionError("the --writers/--responders selection leaves no pair with the responder in a later layer.")
+    return pairs
+
+
+def result_options(options: ScanOptions) -> dict:
+    """The options that change a scan's numbers (they enter the fingerprint)."""
+    d = asdict(options)
+    for key in ("writers", "responders", "block_rows", "family", "layout", "precision", "device", "engine"):
+        d.pop(key)
+    r = options.rotary_offsets
+    d["rotary_offsets"] = "none" if r is None else f"{int(r[0])}:{int(r[1])}"
+    if not options.sampling().sampled:  # exact scans keep the fingerprint they always had
+        for key in ("rows", "seed", "until_ci", "first_rows"):
+            d.pop(key)
+    else:
+        d["row_order"] = "numpy.random.default_rng(seed).permutation(V)"
+        if options.until_ci is None:
+            d.pop("first_rows")
+    d["k"] = [int(k) for k in options.k]
+    d["position"] = "none" if options.position is None else str(options.position)
+    if options.query_part == "full":  # the default keeps the options (and fingerprint) of scans made before it
+        d.pop("query_part")
+    return d
+
+
+def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, options: ScanOptions = ScanOptions(),
+             overwrite: bool = False, progress: Callable[[ScanProgress], None] | None = None, *,
+             cluster: str | None = None, workers: int | None = None, worker_checkpoint: str | None = None) -> Scan:
+    """Scan every selected pair of a checkpoint into the scan file ``out``, resumably.
+
+    Each work unit is committed to the file's journal as soon as it is computed. Calling
+    again on an unfinished file computes only the missing units and ends with the same
+    ``/pairs`` arrays as an uninterrupted run; a file of another checkpoint or of other
+    result-changing options is refused (``overwrite=True`` starts afresh), and a complete
+    one is returned as it is. ``cluster`` (a Dask scheduler address) or ``workers`` (the
+    number of processes of a local Dask cluster) run the units elsewhere; the workers read
+    the checkpoint themselves (from ``worker_checkpoint`` if they see it under another
+    path). ``progress`` receives :class:`~composition.run.progress.ScanProgress` events.
+    SIGINT and SIGTERM stop the scan between commits and raise
+    :class:`~composition.run.interrupts.ScanInterrupted`.
+    """
+    options.validate()
+    out = Path(out)
+    if out.is_dir():
+        raise CompositionError(f"{out} is a directory, not a scan file path.")
+    remote = cluster is not None or workers is not None
+    if cluster is not None and workers is not None:
+        raise CompositionError("give --cluster or --workers, not both.")
+    if workers is not None and int(workers) < 1:
+        raise CompositionError("--workers needs a positive number of processes.")
+    if remote and isinstance(checkpoint, Weights):
+        raise CompositionError("a cluster scan needs the checkpoint's path, which the workers read themselves.")
+    if remote:
+        from .cluster import require_dask
+
+        require_dask()
+    w = checkpoint if isinstance(checkpoint, Weights) else load_weights(checkpoint, options.family, options.layout)
+    offsets_rotation(w, options.rotary_offsets)  # refuse rotary options the model cannot take, before any work
+    if w.rotary is not None and options.rotary_offsets is None:
+        options = replace(options, rotary_offsets=(0, 0))  # the default, recorded as such
+    pairs = scan_pairs(w, options)
+    ks = tuple(int(k) for k in options.k)
+    units = work_units(pairs)
+    attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
+    run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
+    with Guard() as guard:
+        try:
+            with guard.critical():
+                store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS), overwrite)
+            with store:
+                finishing = not store.complete
+                if finishing:
+                    _complete(store, run, guard, w, attrs, options,
+                              dict(checkpoint=checkpoint, cluster=cluster, workers=workers,
+                                   worker_checkpoint=worker_checkpoint))
+        except Interrupt as stop:
+            raise ScanInterrupted(
+                f"interrupted by {signal_name(stop.signum)} with {run.committed_note()}; "
+                "run the same command again to resume.", stop.signum) from None
+        except ScanWriteError as exc:
+            raise CompositionError(
+                f"cannot write the scan file {out} ({exc.reason}); {run.committed_note(kept=True)}"
+            ) from None
+    if finishing:  # head profiles and model-space scores beside the pairs (composition/heads.py)
+        from ..interpret.heads import add_to_scan
+
+        add_to_scan(out, w)
+    return load_scan(out)
+
+
+def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: dict, options: ScanOptions,
+              execution: dict) -> None:
+    """Compute the missing units, committing each as it comes, then label all pairs and finish."""
+    run.begin(store)
+
+    def commit(i: int, results: dict) -> None:
+        index, fields = _unit_fields(results)
+        with guard.critical():
+            store.commit(index, fields)
+        run.committed(i, store.arrays)
+
+    todo = run.todo()
+    if execution["cluster"] is not None or execution["workers"] is not None:
+        from .cluster import run_units
+
+        path = execution["worker_checkpoint"] or Path(execution["checkpoint"]).resolve()
+        run_units(todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
+                  address=execution["cluster"], workers=execution["workers"])
+    else:
+        factors = unit_factors(w, options)
+        for i, unit in todo:
+            commit(i, compute_unit(factors, unit, options))
+    with guard.critical():
+        _label_all(store.arrays, options)
+        store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]), finished=_now()))
+    run.finish()
+
+
+def unit_factors(w: Weights, options: ScanOptions) -> "_FactorCache":
+    """What ``compute_unit`` needs besides the unit: built the same way here and on workers."""
+    T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
+    return _FactorCache(w, T, offsets_rotation(w, options.rotary_offsets))
+
+
+def _open_store(out: Path, attrs: dict, arrays: dict, overwrite: bool) -> ScanStore:
+    """Resume the scan file ``out`` if it exists (refusing a different scan), else start it."""
+    resume = out.exists() and not overwrite
+    if resume:
+        try:
+            old_attrs, old_arrays = read_scan_file(out)
+        except CompositionError:
+            raise CompositionError(f"{out} exists and is not a scan file of this tool; "
+                                   "pass --overwrite to replace it.") from None
+        _check_resumable(out, old_attrs, attrs)
+        for name, data in arrays.items():
+            if name not in old_arrays or old_arrays[name].shape != data.shape:
+                raise CompositionError(f"cannot resume {out}: its dataset /pairs/{name} has another shape; "
+                                       "pass --overwrite to start afresh.")
+    try:
+        return ScanStore.resume(out, old_attrs, old_arrays) if resume else ScanStore.start(out, attrs, arrays)
+    except ScanWriteError as exc:
+        left = ("it is left as it was" if resume else
+                "the existing file is left in place" if out.exists() else "nothing was written")
+        raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); {left}.") from None
+
+
+def _check_resumable(out: Path, old: dict, new: dict) -> None:
+    """Refuse to continue a file made from another checkpoint or with other result options."""
+    diffs = []
+    if old.get("weights_fingerprint") != new["weights_fingerprint"]:
+        diffs.append(f"the checkpoint differs (weights fingerprint {str(old.get('weights_fingerprint'))[:12]} "
+                     f"in the file, {new['weights_fingerprint'][:12]} now)")
+    try:
+        old_opts = json.loads(old.get("options", "{}"))
+    except (TypeError, ValueError):
+        old_opts = {}
+    new_opts = json.loads(new["options"])
+    for key in sorted(set(old_opts) | set(new_opts)):
+        if old_opts.get(key) != new_opts.get(key):
+            diffs.append(f"--{key.replace('_', '-')} differs ({_show(old_opts.get(key))} in the file, "
+                         f"{_show(new_opts.get(key))} now)")
+    for key in ("writers", "responders"):
+        if _selection(old.get(key), old, key) != _selection(new[key], new, key):
+            diffs.append(f"--{key} differs ({old.get(key)} in the file, {new[key]} now)")
+    if diffs:
+        listed = diffs[0] if len(diffs) == 1 else ", ".join(diffs[:-1]) + " and " + diffs[-1]
+        raise CompositionError(f"cannot resume {out}: {listed}; pass --overwrite to start afresh.")
+
+
+def _selection(spec, attrs: dict, key: str):
+    """The heads a --writers/--responders spec selects (spellings of one selection compare equal)."""
+    try:
+        spec = None if spec in (None, "all") else str(spec)
+        return parse_heads(spec, int(attrs["n_layers"]), int(attrs["n_heads"]), f"--{key}")
+    except (CompositionError, KeyError, TypeError, ValueError):
+        return spec
+
+
+def _show(value) -> str:
+    if value is None:
+        return "not set"
+    if isinstance(value, list):
+        return ",".join(str(v) for v in value)
+    return str(value)
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def _unit_fields(results: dict) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """One unit's results as pair indices ``[n, 4]`` and per-pair arrays ``{name: [n, ...]}``.
+
+    Built with ``_store`` into small arrays of the scan file's dtypes, so what is committed
+    and replayed is bit for bit what an uninterrupted run stores.
+    """
+    keys = list(results)
+    index = np.array([u + r for u, r in keys], dtype=np.int64).reshape(-1, 4)  # [n, 4]
+    first = next(iter(results.values()))
+    trailing = {None: (), "k": (len(first.top_share),), "bins": (len(first.histogram),)}
+    fields = {name: np.full((len(keys),) + trailing[axis], fill, dtype=dtype)
+              for name, (dtype, fill, axis) in PAIR_DATASETS.items()}
+    for j, key in enumerate(keys):
+        _store(fields, (j,), results[key])
+    return index, fields
+
+
+class _Run:
+    """Counts and progress events of one call of ``run_scan``."""
+
+    def __init__(self, out: Path, units: list, n_pairs: int, keys_per_row: int, options: ScanOptions, progress):
+        self.out, self.units, self.n_pairs, self.keys = out, units, n_pairs, keys_per_row
+        self.options, self.progress = options, progress
+        self.done = [False] * len(units)
+        self.units_before = self.pairs_before = self.units_done = self.pairs_done = self.entries = 0
+        self.start = time.monotonic()
+        self.left_in_layer: dict[int, int] = {}
+
+    def begin(self, store: ScanStore) -> None:
+        done = store.arrays["done"]
+        for i, unit in enumerate(self.units):
+            self.done[i] = all(done[unit.writer + (unit.responder_layer, h)] for h in unit.responder_heads)
+        self.units_before = self.units_done = sum(self.done)
+        self.pairs_before = self.pairs_done = int(done.sum())
+        for i, unit in self.todo():
+            self.left_in_layer[unit.responder_layer] = self.left_in_layer.get(unit.responder_layer, 0) + 1
+        self.start = time.monotonic()
+        if self.units_before:
+            message = (f"resuming {self.out}: {self.units_before} of {len(self.units)} work units "
+                       "already committed")
+        else:
+            message = f"scanning {self.n_pairs} pairs in {len(self.units)} work units into {self.out}"
+        self._emit("start", message)
+
+    def todo(self) -> list[tuple[int, "WorkUnit"]]:
+        return [(i, u) for i, u in enumerate(self.units) if not self.done[i]]
+
+    def committed(self, i: int, arrays: dict) -> None:
+        unit = self.units[i]
+        if self.done[i]:
+            return
+        self.done[i] = True
+        self.units_done += 1
+        n = len(unit.responder_heads)
+        self.pairs_done += n
+        rows = arrays["rows_evaluated"][unit.writer + (unit.responder_layer,)][list(unit.responder_heads)]
+        self.entries += int(rows.sum()) * self.keys
+        self._emit("unit")
+        lR = unit.responder_layer
+        self.left_in_layer[lR] -= 1
+        if self.left_in_layer[lR] == 0:
+            self._emit("layer", self._layer_summary(lR, arrays))
+
+    def finish(self) -> None:
+        self._emit("finish")
+
+    def committed_note(self, kept: bool = False) -> str:
+        total = len(self.units)
+        if not kept:
+            return f"{self.units_done} of {total} work units committed to {self.out}"
+        if self.units_done == 0:
+            return "nothing was committed before it."
+        return (f"the {self.units_done} of {total} work units committed before are kept in it and its journal "
+                f"{journal_path(self.out).name}: fix the cause and run the same command again to resume.")
+
+    def _layer_summary(self, lR: int, arrays: dict) -> str:
+        done = arrays["done"][:, :, lR, :]  # [L, H, H]
+        effect = np.where(done, np.abs(arrays["mean_percentile"][:, :, lR, :] - 0.5), -1.0)  # [L, H, H]
+        strong = int((effect >= self.options.min_effect).sum())
+        lU, hU, hR = np.unravel_index(int(np.argmax(effect)), effect.shape)
+        best = arrays["mean_percentile"][lU, hU, lR, hR]
+        return (f"responder layer {lR}: {int(done.sum())} pairs done, {strong} with |mean percentile - 0.5| >= "
+                f"{self.options.min_effect:g} (before the FDR over all pairs); strongest {lU}.{hU} -> {lR}.{hR}, "
+                f"mean percentile {best:.3f}")
+
+    def _emit(self, kind: str, message: str = "") -> None:
+        if self.progress is None:
+            return
+        self.progress(ScanProgress(kind, self.units_done, len(self.units), self.units_before, self.pairs_done,
+                                   self.pairs_before, self.n_pairs, self.entries, time.monotonic() - self.start,
+                                   message))
+
+
+@dataclass(frozen=True)
+class WorkUnit:
+    """One writer head against the selected heads of one responder layer."""
+
+    writer: Head
+    responder_layer: int
+    responder_heads: tuple[int, ...]
+
+
+def work_units(pairs: list[tuple[Head, Head]]) -> list[WorkUnit]:
+    """Group pairs into work units, ordered (writer layer, responder layer, writer head) so
+    that consecutive units share their writer values and responder keys."""
+    grouped: dict[tuple[Head, int], list[int]] = {}
+    for u, r in pairs:
+        grouped.setdefault((u, r[0]), []).append(r[1])
+    order = sorted(grouped, key=lambda key: (key[0][0], key[1], key[0][1]))
+    return [WorkUnit(u, lR, tuple(sorted(grouped[(u, lR)]))) for u, lR in order]
+
+
+class _FactorCache:
+    """Writer values and responder keys, built once per layer and kept for the next unit."""
+
+    def __init__(self, w: Weights, table, rotation=None):
+        self.w, self.table, self.rotation = w, table, rotation  # rotation [dh, dh] or None
+        self._values: tuple[int, object] | None = None
+        self._keys: tuple[int, object] | None = None
+
+    def values(self, layer: int):  # -> [H, V, dh]
+        if self._values is None or self._values[0] != layer:
+            self._values = (layer, writer_values(self.w, self.table, layer))
+        return self._values[1]
+
+    def keys(self, layer: int):  # -> [H, V, dh]
+        if self._keys is None or self._keys[0] != layer:
+            self._keys = (layer, responder_keys(self.w, self.table, layer))
+        return self._keys[1]
+
+    # --- other sides and query parts (METHODS §3b): built only when a scan needs them
+    def _held(self, name: str, key, build):
+        """One factor per name, kept until its key (a layer, or a writer head) changes."""
+        store = self.__dict__.setdefault("_side_held", {})
+        if name not in store or store[name][0] != key:
+            store[name] = (key, build())
+        return store[name][1]
+
+    def queries(self, layer: int):  # -> [H, V, dh]  full token-table queries (key side)
+        return self._held("_queries", layer, lambda: responder_queries(self.w, self.table, layer))
+
+    def readouts(self, layer: int):  # -> [H, V, dh]  (W_O Lin(N_f) W_U)^T (value side)
+        return self._held("_readouts", layer, lambda: responder_readouts(self.w, layer))
+
+    def directions(self, writer_layer: int):  # -> [V, d]  unit effective unembedding directions
+        return self._held("_directions", writer_layer, lambda: unembed_directions(self.w, writer_layer))
+
+    def unembed_queries(self, writer_layer: int, layer: int):  # -> [H, V, dh]
+        return self._held("_unembed_queries", (writer_layer, layer), lambda: unembed_queries(
+            self.w, self.directions(writer_layer), writer_layer, layer, rotation=self.rotation))
+
+    def alpha(self, writer: Head):  # -> [V]  o_U(t) . u_t
+        def build():
+            (lU, hU) = writer
+            return unembed_coefficients(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU], self.directions(lU))
+        return self._held("_alpha", writer, build)
+
+    def write_fraction(self, writer: Head, part: str) -> float:
+        """Fraction of the writer's squared write carried by ``part`` (1 for ``full``)."""
+        if part == "full":
+            return 1.0
+        fractions = self.__dict__.setdefault("_fractions", {})
+        if (writer, part) not in fractions:
+            (lU, hU) = writer
+            fractions[(writer, part)] = write_fraction(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU],
+                                                       part, self.alpha(writer))
+        return fractions[(writer, part)]
+
+
+def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) -> dict:
+    """Statistics of every pair of one work unit: ``{(writer, responder): PairStats}``."""
+    w = factors.w
+    (lU, hU), lR = unit.writer, unit.responder_layer
+    A = factors.values(lU)[hU]  # [V, dh]
+    if options.side != "query" or options.query_part != "full":  # METHODS §3b: other factors, same kernel
+        return _side_unit(factors, unit, options, A)
+    K = factors.keys(lR)  # [H, V, dh]
+    middles = query_middles(w, lU, hU, lR, rotation=factors.rotation)  # [H, dh, dh]
+    ks = tuple(int(k) for k in options.k)
+    lefts, rights = [], []  # built when the ranks kernel reaches them, one pair at a time
+    for hR in unit.responder_heads:
+        if options.orientation == "row":  # left = A C (only the evaluated rows), right = K
+            lefts.append(RowProduct(A, middles[hR]))
+            rights.append(_prepared_keys(factors, lR, hR, options))
+        else:  # column: left = K, right = A C (METHODS §3, the transpose), built when reached
+            lefts.append(K[hR])  # [V, dh]
+            rights.append(lambda h=hR: A @ middles[h])  # [V, dh]
+    stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
+                           options.precision, options.device, options.engine, options.block_rows)
+    return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}
+
+
+def _prepared_keys(factors: _FactorCache, layer: int, head: int, options: ScanOptions):
+    """Row orientation: the responder keys packed for the ranks kernel, kept for the layer
+    (every writer unit of that responder layer reuses them)."""
+    key = (layer, options.precision, options.device, options.engine)
+    cache = getattr(factors, "_prepared_keys", None)
+    if cache is None or cache[0] != key:
+        cache = (key, {})
+        factors._prepared_keys = cache
+    if head not in cache[1]:
+        cache[1][head] = prepare_right(factors.keys(layer)[head], options.precision, options.device, options.engine)
+    return cache[1][head]
+
+
+def _side_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A) -> dict:
+    """``compute_unit`` for the key and value sides and the query parts: the same kernel on the
+    factors of METHODS §3b, each pair's write fraction stored beside its statistics."""
+    w = factors.w
+    lefts, rights = zip(*[_side_inputs(factors, unit, options, A, hR) for hR in unit.responder_heads])
+    stats = evaluate_pairs(list(lefts), list(rights), w.vocab_size, tuple(int(k) for k in options.k),
+                           options.sampling(), options.min_effect, options.precision, options.device,
+                           options.engine, options.block_rows)
+    fraction = factors.write_fraction(unit.writer, options.query_part)
+    return {(unit.writer, (unit.responder_layer, hR)): replace(st, write_fraction=fraction)
+            for hR, st in zip(unit.responder_heads, stats)}
+
+
+def _side_inputs(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A, hR: int):
+    """The kernel's (left, right) of one pair: a per-layer factor is packed once per layer, a per-pair
+    one is built when the kernel reaches it. # A [V, dh]; left, right [V, dh] (or lazy)"""
+    w = factors.w
+    (lU, hU), lR = unit.writer, unit.responder_layer
+    row, M = options.orientation == "row", factors.rotation  # M [dh, dh] or None: every score is q M k^T
+    if options.side == "key":  # rows: query tokens; columns: written tokens
+        middle = key_middles(w, lU, hU, lR, rotation=M)[hR]  # [dh, dh]
+        Q = factors.queries(lR)[hR]  # [V, dh]
+        if row:
+            return Q, lambda: A @ middle
+        return RowProduct(A, middle), _prepared_fixed(factors, "queries", lR, hR, lambda: Q, options)
+    if options.side == "value":  # row orientation only (validated)
+        return (RowProduct(A, value_middles(w, lU, hU, lR)[hR]),
+                _prepared_fixed(factors, "readouts", lR, hR, lambda: factors.readouts(lR)[hR], options))
+    middle = query_middles(w, lU, hU, lR, rotation=M)[hR]  # [dh, dh]
+    K = factors.keys(lR)[hR]  # [V, dh]
+    alpha, Uq = factors.alpha(unit.writer), factors.unembed_queries(lU, lR)[hR]  # [V], [V, dh]
+    part = lambda: query_part_side(A, middle, K, options.query_part, alpha, Uq)[0]  # noqa: E731  [V, dh]
+    return (part, _prepared_keys(factors, lR, hR, options)) if row else (K, part)
+
+
+def _prepared_fixed(factors: _FactorCache, name: str, layer: int, head: int, build, options: ScanOptions):
+    """A per-layer right factor other than the keys, packed for the ranks kernel once per layer."""
+    key = (name, layer, options.precision, options.device, options.engine)
+    store = factors.__dict__.setdefault("_side_prepared", {})
+    if store.get("key") != key:
+        store.clear()
+        store["key"] = key
+    if head not in store:
+        store[head] = prepare_right(build(), options.precision, options.device, options.engine)
+    return store[head]
+
+
+def _store(arrays, index, s) -> None:
+    for name, value in s.datasets().items():
+        if name in arrays:
+            arrays[name][index] = value
+    arrays["done"][index] = True
+
+
+def _label_all(arrays, options: ScanOptions) -> None:
+    done = arrays["done"]
+    lab, q = labels(arrays["mean_percentile"][done], arrays["p_value"][done], options.fdr, options.min_effect)
+    arrays["label"][done] = lab
+    arrays["q_value"][done] = q
+
+
+def _attrs(w: Weights, options: ScanOptions, ks, n_pairs: int) -> dict:
+    opts = result_options(options)
+    weights_fp = w.fingerprint()
+    fp = hashlib.sha256((weights_fp + json.dumps(opts, sort_keys=True)).encode()).hexdigest()
+    return {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "tool_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "checkpoint": w.source,
+        "family": w.family,
+        "vocab_size": w.vocab_size,
+        "keys_per_row": w.vocab_size,
+        "n_layers": w.n_layers,
+        "n_heads": w.n_heads,
+        "d_model": w.d_model,
+        "d_head": w.d_head,
+        "side": options.side,
+        "query_part": options.query_part,
+        "table": options.table,
+        "position": opts["position"],
+        "orientation": options.orientation,
+        "rotary_offsets": opts["rotary_offsets"],
+        "readout": w.readout,
+        "reader_notes": json.dumps(list(w.notes)),
+        "k": list(ks),
+        "fdr": options.fdr,
+        "min_effect": options.min_effect,
+        "histogram_bins": HIST_BINS,
+        "writers": options.writers or "all",
+        "responders": options.responders or "all",
+        "pairs_selected": n_pairs,
+        "options": json.dumps(opts, sort_keys=True),
+        "weights_fingerprint": weights_fp,
+        "fingerprint": fp,
+        "label_fill": -128,
+        "caution": CAUTION,
+    }
+
+
+__all__ = ["ScanOptions", "ScanInterrupted", "run_scan", "parse_heads", "scan_pairs", "load_scan"]

@@ -1,0 +1,1 @@
+"""Score: exact diagonal midranks (kernels), row sampling, statistics and labels (docs/methods.md §4)."""

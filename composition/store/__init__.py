@@ -1,0 +1,1 @@
+"""Store: the scan file, its schema, its journal and the one atomic file writer."""
