@@ -1,6 +1,6 @@
 """Small random checkpoints in the GPT-2 layout, written as real safetensors files: the one
 place tests build them. Random-initialised models are test inputs for reference comparisons
-(CHECKS.md); they are not demo data and carry no planted structure."""
+(docs/testing.md); they are not demo data and carry no planted structure."""
 
 from __future__ import annotations
 

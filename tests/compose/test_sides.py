@@ -129,7 +129,7 @@ def test_factors_equal_dense_oracle_and_midranks_exact(small, small_tied, side, 
     it, every column's) exactly as scipy.stats.rankdata on the dense matrix.
 
     Reference library: scipy.stats.rankdata (via tests/oracles/dense_gpt2.midranks_rows);
-    Source: METHODS.md §3, §3b, §4 (the oracle's formulas)"""
+    Source: docs/methods.md §3, §3b, §4 (the oracle's formulas)"""
     small = small_tied if tied else small
     orientations = ("row",) if side == "value" else ("row", "column")
     for writer, responder in PAIRS:
@@ -150,7 +150,7 @@ def test_key_side_query_bias_counts_and_key_bias_does_not(small):
     shift; shifting its key bias changes nothing (the written-token key is the writer's linear
     contribution, and ``q . b_K`` is constant over keys).
 
-    Reference library: scipy.stats.rankdata; Source: METHODS.md §3b (key side), §3 (key bias)"""
+    Reference library: scipy.stats.rankdata; Source: docs/methods.md §3b (key side), §3 (key bias)"""
     import dataclasses
 
     writer, responder = PAIRS[0]
@@ -192,7 +192,7 @@ def test_write_fraction_matches_oracle_and_parts_sum_to_one(small):
     """The write fraction of each part (mean over tokens of |o_part(t)|^2 / |o_U(t)|^2) equals the
     oracle's residual-space computation; unembed + rest = 1 token by token, so their means sum to 1.
 
-    Source: METHODS.md §3b (write fraction; Pythagoras for an orthogonal projection)"""
+    Source: docs/methods.md §3b (write fraction; Pythagoras for an orthogonal projection)"""
     for writer, _ in PAIRS:
         (lU, hU) = writer
         A = writer_values(small.w, small.T, lU)[hU]
@@ -216,7 +216,7 @@ def test_projection_identity_full_is_unembed_plus_rest(small, orientation):
     to the full one to float tolerance, and the fixed factor is shared; the unembed part is rank
     dh (rows of one [V, dh] matrix scaled by signed per-token numbers).
 
-    Source: METHODS.md §3b (o_U(t) = its projection on u_t + the remainder)"""
+    Source: docs/methods.md §3b (o_U(t) = its projection on u_t + the remainder)"""
     written = 0 if orientation == "row" else 1
     for writer, responder in PAIRS:
         full = _factors(small, writer, responder, "query", "full", orientation)
@@ -240,7 +240,7 @@ def test_key_side_columns_are_free_of_key_scales(small):
     ranks still equal scipy's on the rescaled dense matrix; the row orientation, by contrast, does
     depend on those scales (the common-scale assumption is a real assumption).
 
-    Reference library: scipy.stats.rankdata; Source: METHODS.md §3b"""
+    Reference library: scipy.stats.rankdata; Source: docs/methods.md §3b"""
     rng = np.random.default_rng(0)
     for writer, responder in PAIRS:
         keys, queries = _factors(small, writer, responder, "key", orientation="column")  # written, query
@@ -260,7 +260,7 @@ def test_row_ranks_free_of_written_token_scales(small, side, part):
     """Multiplying each row of the query and value sides' written-token factor by a random positive
     factor leaves every row rank unchanged, equal to scipy's on the rescaled dense matrix.
 
-    Reference library: scipy.stats.rankdata; Source: METHODS.md §3, §3b"""
+    Reference library: scipy.stats.rankdata; Source: docs/methods.md §3, §3b"""
     rng = np.random.default_rng(1)
     for writer, responder in PAIRS:
         left, right = _factors(small, writer, responder, side, part)
@@ -275,7 +275,7 @@ def test_key_rotation_argument_matches_dense_score(small):
     """An averaged rotary matrix ``M`` passed to key_middles is folded so that the key side equals
     the dense score ``q M k^T`` (METHODS §3, row-vector form), here with a random ``M``.
 
-    Source: METHODS.md §3 (rotary folding)"""
+    Source: docs/methods.md §3 (rotary folding)"""
     writer, responder = PAIRS[1]
     (lU, hU), (lR, hR) = writer, responder
     dh = CFG["n_embd"] // CFG["n_head"]
@@ -299,7 +299,7 @@ def test_scan_dispatch_matches_oracle(small, tmp_path, side, part, orientation):
     """A scan with --side/--query-part stores, per pair, the statistics of the oracle's midranks,
     records side and query part in the file, and stores the write fraction beside the shares.
 
-    Reference library: scipy.stats.rankdata; Source: METHODS.md §3b, §4"""
+    Reference library: scipy.stats.rankdata; Source: docs/methods.md §3b, §4"""
     options = ScanOptions(table="attn0-mlp0", side=side, query_part=part, orientation=orientation,
                           writers="0.1,1.2", responders="2")
     scan = run_scan(small.dir, tmp_path / "s.h5", options)
@@ -339,7 +339,7 @@ def test_rotary_offsets_fold_into_every_side(small, tmp_path, side, part):
     statistics are those of the oracle's dense matrices with ``M``; the value side has no positions
     in it and does not change.
 
-    Reference library: scipy.stats.rankdata; Source: METHODS.md §3 (rotary folding), §3b"""
+    Reference library: scipy.stats.rankdata; Source: docs/methods.md §3 (rotary folding), §3b"""
     import dataclasses
 
     from composition.extract.rotary import inverse_frequencies, mean_rotation
@@ -512,7 +512,7 @@ def test_every_side_and_part_on_every_family(families, tmp_path, name):
     every diagonal midrank exact; and a scan of each side and part runs and records it.
 
     Reference library: scipy.stats.rankdata; transformers (the random models, read by the
-    package's readers that are checked against it); Source: METHODS.md §1, §3, §3b"""
+    package's readers that are checked against it); Source: docs/methods.md §1, §3, §3b"""
     from composition.extract.rotary import offsets_rotation
 
     d, w, T = families[name]
@@ -547,7 +547,7 @@ def test_sampled_rows_on_other_sides(small, tmp_path, side, part):
     of the key side, the value side and a query part stores the statistics of exactly those rows'
     exact midranks in the oracle's dense matrix (on the key side the rows are query tokens).
 
-    Reference library: scipy.stats.rankdata, numpy.random.default_rng; Source: METHODS.md §3b, §4"""
+    Reference library: scipy.stats.rankdata, numpy.random.default_rng; Source: docs/methods.md §3b, §4"""
     scan = run_scan(small.dir, tmp_path / "s.h5", ScanOptions(side=side, query_part=part, writers="0.1",
                                                              responders="2", rows=60, seed=5))
     rows = np.random.default_rng(5).permutation(CFG["vocab_size"])[:60]

@@ -35,7 +35,7 @@ def test_rmsnorm_matches_torch():
 
 
 def test_norm_linear_part_reproduces_the_norm_up_to_scale():
-    """Source: METHODS.md §1 (Lin(N) = P diag(gamma); N(x) = x Lin(N) / sigma + beta).
+    """Source: docs/methods.md §1 (Lin(N) = P diag(gamma); N(x) = x Lin(N) / sigma + beta).
 
     Reference library: torch (layer_norm gives N(x))."""
     g = torch.Generator().manual_seed(2)
@@ -55,7 +55,7 @@ def test_gelu_matches_torch(name, approximate):
 
 
 def test_exact_and_tanh_gelu_differ_as_stated():
-    """Source: METHODS.md §2 (exact and tanh GELU differ by up to ~5e-4). Reference library: torch."""
+    """Source: docs/methods.md §2 (exact and tanh GELU differ by up to ~5e-4). Reference library: torch."""
     x = torch.linspace(-6, 6, 20001, dtype=torch.float64)
     gap = (activate("gelu", x) - activate("gelu-tanh", x)).abs().max().item()
     assert 1e-4 < gap < 5e-4
@@ -63,7 +63,7 @@ def test_exact_and_tanh_gelu_differ_as_stated():
 
 @pytest.mark.parametrize("activation", ["gelu_new", "gelu", "relu"])
 def test_attn0_mlp0_table_equals_block0_residual_at_position0(tmp_path, activation):
-    """Source: METHODS.md §2 exactness test: with --position index 0 a causal decoder's
+    """Source: docs/methods.md §2 exactness test: with --position index 0 a causal decoder's
     attn0-mlp0 table equals the residual stream at position 0 after block 0, computed here
     by an independent plain forward pass (tests/oracles/dense_gpt2.py, itself checked
     against transformers' GPT2Model)."""
@@ -78,7 +78,7 @@ def test_attn0_mlp0_table_equals_block0_residual_at_position0(tmp_path, activati
 @pytest.mark.parametrize("kind", ["embed", "mlp0", "attn0-mlp0"])
 @pytest.mark.parametrize("position", [None, "mean", 7])
 def test_token_tables_match_the_dense_oracle(small_model, kind, position):
-    """Source: METHODS.md §2, against the independent float64 oracle tests/oracles/dense_gpt2.py."""
+    """Source: docs/methods.md §2, against the independent float64 oracle tests/oracles/dense_gpt2.py."""
     path, sd, cfg = small_model
     ours = token_table(load_weights(path), TableOptions(kind, position)).numpy()
     ref = oracle.token_table(sd, cfg, kind, position)

@@ -1,6 +1,6 @@
 """Head profiles (METHODS §5) and model-space scores (METHODS §7): composition/heads.py.
 
-Each test names its source (CHECKS.md). Demo-based tests test recovery of what was planted
+Each test names its source (docs/testing.md). Demo-based tests test recovery of what was planted
 in the invented demo model.
 """
 
@@ -49,7 +49,7 @@ def small(tmp_path_factory):
 def test_composition_score_of_a_projection_with_itself(k):
     """score(P, P) = 1/sqrt(k) for a rank-k orthogonal projection P, in all three kinds.
 
-    Source: CHECKS.md worked example (|P P|_F = |P|_F = sqrt(k)); composition scores from
+    Source: docs/testing.md worked example (|P P|_F = |P|_F = sqrt(k)); composition scores from
     Elhage et al. 2021, "A Mathematical Framework for Transformer Circuits".
     """
     Q = _orthonormal(np.random.default_rng(k), 64, k)
@@ -62,7 +62,7 @@ def test_composition_score_of_a_projection_with_itself(k):
 def test_composition_score_of_orthogonal_subspaces_is_zero():
     """Writer and responder on orthogonal subspaces give 0.
 
-    Source: CHECKS.md worked example (P1 P2 = 0 for orthogonal projections).
+    Source: docs/testing.md worked example (P1 P2 = 0 for orthogonal projections).
     """
     Q = _orthonormal(np.random.default_rng(0), 64, 16)  # [d, 16]
     A, B = Q[:, :8], Q[:, 8:]
@@ -136,7 +136,7 @@ def test_gaussian_baseline_is_near_one_over_sqrt_d():
 def test_projection_kernel_worked_examples():
     """Identical subspaces give their dimension, orthogonal ones 0.
 
-    Source: CHECKS.md worked example; Hamm & Lee 2008, "Grassmann discriminant analysis"
+    Source: docs/testing.md worked example; Hamm & Lee 2008, "Grassmann discriminant analysis"
     (projection kernel |Q1^T Q2|_F^2).
     """
     rng = np.random.default_rng(5)
@@ -149,7 +149,7 @@ def test_projection_kernel_worked_examples():
 def test_projection_kernel_of_random_subspaces_averages_ab_over_d():
     """Uniformly random subspaces of dimensions a and b in R^d: mean kernel ab/d.
 
-    Source: CHECKS.md; Yamagiwa, Takase & Shimodaira 2026 (random baseline of the projection
+    Source: docs/testing.md; Yamagiwa, Takase & Shimodaira 2026 (random baseline of the projection
     kernel). Reference library: scipy.stats.ortho_group for Haar-random orthonormal bases;
     the check allows five standard errors of the Monte-Carlo mean.
     """
@@ -216,7 +216,7 @@ def test_ov_diagonal_midranks_match_dense_rankdata(small):
 def test_sign_of_the_ov_circuit_swaps_copying_and_suppressing(small):
     """Negating W_O negates F: top and bottom shares swap exactly and the copying score flips.
 
-    Source: CHECKS.md sign symmetry (negating the middle factor swaps top-k and bottom-k).
+    Source: docs/testing.md sign symmetry (negating the middle factor swaps top-k and bottom-k).
     """
     w, sd, cfg = small
     T = token_table(w)

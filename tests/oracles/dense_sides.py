@@ -1,7 +1,7 @@
 """Independent dense float64 oracle for the key side, the value side and the
 query side's mediation parts (METHODS §3b), GPT-2 layout.
 
-Written from METHODS.md §1, §3 and §3b only (no code from the ``composition``
+Written from docs/methods.md §1, §3 and §3b only (no code from the ``composition``
 package), in plain NumPy float64, reusing the GPT-2 helpers of
 ``dense_gpt2``.  Every matrix is held whole ([V, V] included), and every
 vector lives in the residual space ``R^d``: the projections of the mediation

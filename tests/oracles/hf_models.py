@@ -1,4 +1,4 @@
-"""Small random-initialised `transformers` models as external references (CHECKS.md,
+"""Small random-initialised `transformers` models as external references (docs/testing.md,
 "checkpoint families"). Nothing is downloaded: every model is built from a config here.
 
 * :func:`build` makes a model of one family, re-draws its weights so attention scores are

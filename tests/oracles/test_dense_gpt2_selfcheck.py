@@ -99,7 +99,7 @@ def test_layer_norm_linear_part_is_exact_derivative_direction():
     """Lin(LayerNorm) = P diag(gamma): N(x) - beta = Lin(N)(x) / sigma(x) for
     row vectors, i.e. x @ P diag(gamma) / sqrt(var + eps) + beta == N(x).
 
-    Source: METHODS.md §1"""
+    Source: docs/methods.md §1"""
     rng = np.random.default_rng(2)
     d, eps = 32, 1e-5
     x = rng.normal(0, 1, (10, d))
@@ -165,7 +165,7 @@ def test_attn0_mlp0_table_equals_forward_at_position0(act, prefix):
     equals the residual stream at position 0 after block 0 of an ordinary
     causal forward pass (position 0 attends only to itself).
 
-    Source: METHODS.md §2"""
+    Source: docs/methods.md §2"""
     cfg = dict(SMALL_CFG, activation_function=act)
     sd = random_numpy_sd(cfg, seed=3, prefix=prefix)
     rng = np.random.default_rng(4)
@@ -215,7 +215,7 @@ def test_midranks_cauchy_schwarz_and_sign_symmetry():
     unique maximum (midrank 0, top-1 share 1); negating S maps r -> n-1-r,
     swapping top-k and bottom-k shares exactly.
 
-    Source: CHECKS.md (Cauchy-Schwarz; sign symmetry); METHODS.md §4"""
+    Source: docs/testing.md (Cauchy-Schwarz; sign symmetry); docs/methods.md §4"""
     rng = np.random.default_rng(6)
     A = rng.normal(size=(50, 8))
     A /= np.linalg.norm(A, axis=1, keepdims=True)
@@ -236,7 +236,7 @@ def test_dense_token_matrix_factored_form_and_bias_invariance():
     C_UR = W_O^U Lin(N_lR) W_Q^R, computed by a separate path; the value,
     query and key biases do not enter S.
 
-    Source: METHODS.md §3"""
+    Source: docs/methods.md §3"""
     cfg = dict(SMALL_CFG)
     sd = random_numpy_sd(cfg, seed=7)
     table = og.token_table(sd, cfg, "attn0-mlp0", None)
@@ -276,7 +276,7 @@ def test_ov_matrix_and_eigen_copying_score():
     eigen copying score from numpy.linalg.eigvals on the dense [V, V] matrix
     equals the score from the [dh, dh] matrix B^T A; +-identity give +-1.
 
-    Source: METHODS.md §5; Elhage et al. 2021"""
+    Source: docs/methods.md §5; Elhage et al. 2021"""
     cfg = dict(SMALL_CFG, vocab_size=120)
     sd = random_numpy_sd(cfg, seed=8)
     table = og.token_table(sd, cfg, "attn0-mlp0", "mean")

@@ -1,7 +1,7 @@
 """Compensation predictions, the shortlist, the report and the pair drill-down
 (composition/predict.py, composition/report/).
 
-Each test names its source (CHECKS.md). Demo-based tests test recovery of what was planted
+Each test names its source (docs/testing.md). Demo-based tests test recovery of what was planted
 in the invented demo model.
 """
 

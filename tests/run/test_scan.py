@@ -26,7 +26,7 @@ def _our_ranks(w, T, writer, responder, orientation):
 @pytest.mark.parametrize("orientation", ["row", "column"])
 def test_every_diagonal_midrank_matches_dense_reference(tmp_path, seed, orientation):
     """Reference library: scipy.stats.rankdata (method="average") on the dense float64 token
-    matrix built by the independent oracle tests/oracles/dense_gpt2.py from METHODS.md §3-§4.
+    matrix built by the independent oracle tests/oracles/dense_gpt2.py from docs/methods.md §3-§4.
     Duplicate tokens in the vocabulary give exact ties."""
     path, sd, cfg = random_gpt2(str(tmp_path / "m"), seed=seed, V=257, duplicate_tokens=5 if seed == 2 else 0)
     w = load_weights(path)
@@ -42,7 +42,7 @@ def test_every_diagonal_midrank_matches_dense_reference(tmp_path, seed, orientat
 
 def test_scan_file_statistics_match_the_dense_reference(tmp_path):
     """Reference library: scipy.stats.rankdata via the dense oracle; the stored shares, mean
-    percentile and histogram are those of the reference midranks (METHODS.md §4)."""
+    percentile and histogram are those of the reference midranks (docs/methods.md §4)."""
     path, sd, cfg = random_gpt2(str(tmp_path / "m"), seed=4, V=200, L=2)
     scan = run_scan(path, tmp_path / "s.h5", ScanOptions(k=(1, 3, 20)))
     T_ref = oracle.token_table(sd, cfg, "attn0-mlp0", None)
@@ -61,7 +61,7 @@ def test_scan_file_statistics_match_the_dense_reference(tmp_path):
 
 
 def test_null_model_gives_uniform_diagonal_rank():
-    """CHECKS.md null model: i.i.d. continuous entries give a uniform diagonal rank, so the
+    """docs/testing.md null model: i.i.d. continuous entries give a uniform diagonal rank, so the
     top-k share is k/n (Reference library: scipy.stats.binomtest) and the mean percentile 1/2."""
     g = torch.Generator().manual_seed(5)
     n = 3000
@@ -75,7 +75,7 @@ def test_null_model_gives_uniform_diagonal_rank():
 
 
 def test_cauchy_schwarz_diagonal_is_row_maximum():
-    """CHECKS.md Cauchy-Schwarz: S = A A^T with distinct unit-norm rows has every diagonal as its
+    """docs/testing.md Cauchy-Schwarz: S = A A^T with distinct unit-norm rows has every diagonal as its
     row's unique maximum, so the top-1 share is exactly 1. Common practice, no source."""
     g = torch.Generator().manual_seed(6)
     A = torch.randn(2000, 24, generator=g, dtype=torch.float64)
@@ -85,7 +85,7 @@ def test_cauchy_schwarz_diagonal_is_row_maximum():
 
 
 def test_negating_the_middle_factor_swaps_top_and_bottom_shares():
-    """CHECKS.md sign symmetry: negating the middle factor swaps top-k and bottom-k shares
+    """docs/testing.md sign symmetry: negating the middle factor swaps top-k and bottom-k shares
     exactly (midranks r -> n-1-r, ties included). Common practice, no source."""
     g = torch.Generator().manual_seed(7)
     A = torch.randint(-2, 3, (800, 8), generator=g).double()  # small integers: many exact ties
@@ -100,7 +100,7 @@ def test_negating_the_middle_factor_swaps_top_and_bottom_shares():
 
 @pytest.mark.parametrize("seed", [10, 11])
 def test_random_models_are_labelled_neutral(tmp_path, seed):
-    """Null model at scan level (METHODS.md §4; labels with Benjamini-Hochberg 1995 via
+    """Null model at scan level (docs/methods.md §4; labels with Benjamini-Hochberg 1995 via
     scipy.stats.false_discovery_control): in a model of random weights at most 1 % of the
     pairs earn a non-neutral label. GPT-2-style initialisation, std 0.02 (From memory: the
     GPT-2 initialiser's standard deviation)."""
@@ -128,7 +128,7 @@ def test_demo_scan_labels_exactly_the_planted_responders(tmp_path):
 
 def test_column_orientation_scan_matches_the_dense_reference(tmp_path):
     """Reference library: scipy.stats.rankdata via the dense oracle's column midranks
-    (METHODS.md §3, column orientation): the scan's shares and mean percentile are those of the
+    (docs/methods.md §3, column orientation): the scan's shares and mean percentile are those of the
     reference ranks of every column."""
     path, sd, cfg = random_gpt2(str(tmp_path / "m"), seed=8, V=180, L=2)
     scan = run_scan(path, tmp_path / "s.h5", ScanOptions(orientation="column", k=(1, 5)))

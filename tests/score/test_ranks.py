@@ -170,7 +170,7 @@ def test_batch_of_responder_heads_equals_one_at_a_time():
 
 
 def test_cauchy_schwarz_top1_share_is_one():
-    """Source: Cauchy-Schwarz inequality (CHECKS.md): S = A A^T with distinct unit rows has
+    """Source: Cauchy-Schwarz inequality (docs/testing.md): S = A A^T with distinct unit rows has
     each diagonal as its row's unique maximum, so the top-1 share is exactly 1."""
     g = _gen(7)
     A = torch.randn(700, 12, generator=g, dtype=torch.float64)
@@ -182,7 +182,7 @@ def test_cauchy_schwarz_top1_share_is_one():
 
 
 def test_sign_symmetry_swaps_top_and_bottom_shares():
-    """Source: CHECKS.md sign symmetry: negating the middle factor negates S, so with no ties
+    """Source: docs/testing.md sign symmetry: negating the middle factor negates S, so with no ties
     top-k and bottom-k shares swap exactly."""
     g = _gen(8)
     A = torch.randn(800, 16, generator=g, dtype=torch.float64)
