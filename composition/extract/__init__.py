@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import os
+from collections.abc import Mapping
 
 from ..errors import CompositionError
 from .weights import Weights
@@ -24,10 +25,12 @@ def detect_family(config: dict) -> str | None:
     return found[0] if found else None
 
 
-def load_weights(checkpoint: str | os.PathLike, family: str | None = None,
-                 layout_file: str | os.PathLike | None = None) -> Weights:
+def load_weights(checkpoint: str | os.PathLike | Mapping, family: str | None = None,
+                 layout_file: str | os.PathLike | None = None, *, config: Mapping | None = None) -> Weights:
     """Read a checkpoint (directory, weights file or shard index) into canonical weights.
 
+    ``checkpoint`` may also be a state dict in memory (torch tensors or NumPy arrays under
+    the family's usual names) with its ``config`` mapping (composition.extract.memory).
     ``family`` overrides detection from ``config.json``; ``layout_file`` names a layout
     file for a family the tool does not know. Every tensor is read once here, its shape,
     dtype and finiteness checked; layers are then kept or re-read as memory allows.
@@ -35,8 +38,15 @@ def load_weights(checkpoint: str | os.PathLike, family: str | None = None,
     if family is not None and layout_file is not None:
         raise CompositionError("give either --family or --layout, not both.")
     spec = layout.read_layout(layout_file) if layout_file is not None else None
-    weights_file, config = locate(checkpoint, need_config=spec is None)
-    src = TensorSource(weights_file)
+    if isinstance(checkpoint, Mapping):  # a model in memory
+        from .memory import memory_source
+
+        src, config = memory_source(checkpoint, config)
+    else:
+        if config is not None:
+            raise CompositionError("config= goes with a state dict in memory; a checkpoint path reads its own config.json.")
+        weights_file, config = locate(checkpoint, need_config=spec is None)
+        src = TensorSource(weights_file)
     if spec is not None:
         weights = layout.read(src, config, spec)
     else:
