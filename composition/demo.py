@@ -77,13 +77,19 @@ PLANTED_HEADS = {**{c[0]: +1 for c in PLANTED_CIRCUITS.values()},
                  (1, 3): +1}
 
 
-def build_demo(directory: str | Path, seed: int = 0) -> Path:
-    """Write ``model.safetensors`` and ``config.json`` of the demo model into ``directory``."""
-    from safetensors.torch import save_file
+def build_demo(directory: str | Path, seed: int = 0, without: tuple[str, ...] = ()) -> Path:
+    """Write ``model.safetensors`` and ``config.json`` of the demo model into ``directory``.
 
+    ``without``: names of PLANTED_CIRCUITS left out: their responder's query and key weights keep
+    the random values every unplanted head has, and every other tensor is byte for byte the same
+    (the invented "after a change" checkpoint, :func:`build_demo_after`).
+    """
     g = torch.Generator().manual_seed(seed)
+    for name in without:
+        if name not in PLANTED_CIRCUITS:
+            raise ValueError(f"{name!r} is not one of the demo's planted circuits: {', '.join(PLANTED_CIRCUITS)}")
     V, d, H, L, P = (SIZES[k] for k in ("vocab_size", "n_embd", "n_head", "n_layer", "n_positions"))
-    dh, m = d // H, 4 * d
+    dh = d // H
 
     def randn(*shape, std=1.0):
         return torch.randn(*shape, generator=g, dtype=torch.float64) * std
@@ -100,17 +106,37 @@ def build_demo(directory: str | Path, seed: int = 0) -> Path:
     def plant(tensor, layer, head, value, noise=0.1):
         tensor[layer, head] = value + noise * randn(*value.shape, std=float(value.norm()) / value.numel() ** 0.5)
 
-    for (lu, hu), (lr, hr), s_w, s_r, qk, ov in PLANTED_CIRCUITS.values():
+    for name, ((lu, hu), (lr, hr), s_w, s_r, qk, ov) in PLANTED_CIRCUITS.items():
+        random_qk = (W_Q[lr, hr].clone(), W_K[lr, hr].clone())
         plant(W_V, lu, hu, sub(s_w))
         plant(W_O, lu, hu, sub(s_w).T)
         plant(W_Q, lr, hr, sub(s_w))
         plant(W_K, lr, hr, qk * sub(s_w))
         plant(W_V, lr, hr, sub(s_r))
         plant(W_O, lr, hr, ov * sub(s_r).T)
+        if name in without:  # drawn as always (the generator moves on the same), then put back
+            W_Q[lr, hr], W_K[lr, hr] = random_qk
     # a generator of its own, so every tensor drawn below is the same as without the side circuits
     _plant_side_circuits(W_Q, W_K, W_V, W_O, _blocks(basis), torch.Generator().manual_seed(seed + 1))
 
-    t = {"wte.weight": _fix_block_shares(randn(V, d), _blocks(basis)), "wpe.weight": randn(P, d, std=0.01)}
+    note = "invented demo model of the composition project; see data_cards/demo-model.md"
+    if without:
+        note += f" (left out: {', '.join(without)})"
+    return _write_gpt2(directory, _fix_block_shares(randn(V, d), _blocks(basis)), W_Q, W_K, W_V, W_O, randn,
+                       SIZES, note)
+
+
+def _write_gpt2(directory, wte, W_Q, W_K, W_V, W_O, randn, sizes: dict, note: str) -> Path:
+    """Write an invented GPT-2-layout checkpoint (weights, config, invented vocabulary) into ``directory``.
+
+    # wte [V, d]; W_Q, W_K, W_V [L, H, d, dh]; W_O [L, H, dh, d]. ``randn(*shape, std=)`` draws the
+    positions, biases, norms and MLPs, in this fixed order.
+    """
+    from safetensors.torch import save_file
+
+    V, d, H, L, P = (sizes[k] for k in ("vocab_size", "n_embd", "n_head", "n_layer", "n_positions"))
+    m = 4 * d
+    t = {"wte.weight": wte, "wpe.weight": randn(P, d, std=0.01)}
     for i in range(L):
         p = f"h.{i}."
         per_head = lambda W: W[i].permute(1, 0, 2).reshape(d, d)  # noqa: E731  [H, d, dh] -> [d, H*dh]
@@ -135,19 +161,154 @@ def build_demo(directory: str | Path, seed: int = 0) -> Path:
     config = {
         "model_type": "gpt2",
         "architectures": ["GPT2LMHeadModel"],
-        **SIZES,
+        **sizes,
         "n_ctx": P,
         "n_inner": None,
         "activation_function": "gelu_new",
         "layer_norm_epsilon": 1e-5,
         "tie_word_embeddings": True,
-        "note": "invented demo model of the composition project; see data_cards/demo-model.md",
+        "note": note,
     }
     (out / "config.json").write_text(json.dumps(config, indent=2) + "\n")
     # An invented vocabulary, so reports can show token text (plain-JSON tokenizer.json).
     vocab = {text: i for i, text in enumerate(_invented_words(V))}
     (out / "tokenizer.json").write_text(json.dumps({"model": {"type": "WordLevel", "vocab": vocab}}) + "\n")
     return out
+
+
+def build_demo_after(directory: str | Path, seed: int = 0) -> Path:
+    """The demo model "after a change" (invented): the same checkpoint with the ``suppressor`` circuit's
+    responder query and key left random (:data:`AFTER_CHANGE`), everything else byte for byte the same."""
+    return build_demo(directory, seed=seed, without=(AFTER_CHANGE,))
+
+
+AFTER_CHANGE = "suppressor"  # the planted circuit build_demo_after leaves out: pair 1.0 -> 2.3
+
+# ---------------------------------------------------------------------------
+# The second invented model: writers acting together, and a responder with a generic preference
+# (issue 14; docs/groups.md). A model of its own, so the first demo's findings stay as they are.
+# ---------------------------------------------------------------------------
+
+GROUP_SIZES = dict(vocab_size=2048, n_embd=128, n_head=4, n_layer=4, n_positions=64)
+# name: (members, the responder that reacts to the group)
+WRITER_GROUPS = {"quartet": (((1, 0), (1, 1), (2, 0), (2, 1)), (3, 0))}
+GROUP_SIGNAL = 0.045  # each member's coherent share; its antisymmetric noise has entries of sd 1/sqrt(32)
+# the responder with a generic preference for the token's own key, and the copying writers that light it up
+GENERIC_RESPONDER = (3, 1)
+GENERIC_WRITERS = ((1, 2), (2, 2))
+
+
+def build_group_demo(directory: str | Path, seed: int = 0) -> Path:
+    """Write the invented writer-group demo model (GPT-2 layout) into ``directory``.
+
+    Orthonormal 32-dimensional blocks X, X2 and Y, orthogonal to each other and to the all-ones
+    direction, carry what is planted (data_cards/demo-model.md):
+
+    * the four members of ``quartet`` each read the token's block-X component and write it into block X2
+      as ``x (c I + R_m)``: a small coherent part ``c`` (GROUP_SIGNAL) shared by all, and an antisymmetric
+      random part ``R_m`` of each member's own, which adds spread without moving the diagonal. Responder
+      3.0 queries block X2 and keys on block X. One member alone moves the diagonal too little to be
+      labelled; the four together add their coherent parts (4c) while their random parts grow as 2.
+    * responder 3.1 queries and keys on block Y: it prefers each token's own key whatever writes it.
+      Writers 1.2 and 2.2 copy block Y, so both pairs are labelled, and so would be any write of the
+      token: the identity reference of 3.1 is as high as these pairs.
+
+    Layer 0 is kept small (x0.01) so the token table keeps each token's identity; every other head
+    is random; planted weights carry a 5 % random perturbation.
+    """
+    g = torch.Generator().manual_seed(seed + 100)
+    V, d, H, L = (GROUP_SIZES[k] for k in ("vocab_size", "n_embd", "n_head", "n_layer"))
+    dh = d // H
+
+    def randn(*shape, std=1.0):
+        return torch.randn(*shape, generator=g, dtype=torch.float64) * std
+
+    basis = _subspaces(randn(d, d), d)  # [d, d-1]
+    X, X2, Y = (basis[:, i * dh:(i + 1) * dh] for i in range(3))  # [d, dh] each
+    W_Q, W_K, W_V = (randn(L, H, d, dh, std=d**-0.5) for _ in range(3))  # [L, H, d, dh]
+    W_O = randn(L, H, dh, d, std=dh**-0.5)  # [L, H, dh, d]
+    W_O[0] *= 0.01
+
+    def plant(tensor, head, value, noise=0.05):
+        rms = float(value.norm()) / value.numel() ** 0.5
+        tensor[head] = value + noise * randn(*value.shape, std=rms)
+
+    members, responder = WRITER_GROUPS["quartet"]
+    for head in members:
+        R = randn(dh, dh, std=dh**-0.5)
+        mix = GROUP_SIGNAL * torch.eye(dh, dtype=torch.float64) + (R - R.T) / 2**0.5  # [dh, dh]
+        plant(W_V, head, X)
+        plant(W_O, head, mix @ X2.T)
+    plant(W_Q, responder, X2)
+    plant(W_K, responder, X)
+    for head in GENERIC_WRITERS:
+        plant(W_V, head, Y)
+        plant(W_O, head, Y.T)
+    plant(W_Q, GENERIC_RESPONDER, Y)
+    plant(W_K, GENERIC_RESPONDER, Y)
+    return _write_gpt2(directory, randn(V, d), W_Q, W_K, W_V, W_O, randn, GROUP_SIZES,
+                       "invented writer-group demo model of the composition project; see data_cards/demo-model.md")
+
+
+COMPARE_SELECTION = dict(writers="1.0,1.2,1.5", responders="2.3,3.1,3.6")  # the planted circuits' pairs and more
+
+
+def beyond_single_heads(root: str | Path, demo_model: str | Path | None = None) -> list[str]:
+    """The issue-14 part of the demo: build the invented models, compute, and return the lines to print.
+
+    Writes into ``root``: ``group-demo-model/`` (:func:`build_group_demo`), ``demo-model-after/``
+    (:func:`build_demo_after`; ``demo_model`` is the first demo checkpoint, built into ``demo-model/``
+    when not given), restricted scans of both (``demo-before.h5``, ``demo-after.h5``) and their comparison
+    (``demo-compare/``). Everything here is invented (data_cards/demo-model.md).
+    """
+    from .compose.groups import WriterGroup, group_statistics
+    from .compose.references import band, reference_statistics
+    from .extract import load_weights
+    from .extract.tables import TableOptions, token_table
+    from .interpret.compare import compare_scans
+    from .run.scan import ScanOptions, run_scan
+    from .score.stats import DEFAULT_MIN_EFFECT
+
+    root = Path(root)
+    lines = ["writer groups and reference writers (invented model, data_cards/demo-model.md):"]
+    model = build_group_demo(root / "group-demo-model")
+    single = run_scan(model, root / "group-demo-scan.h5", ScanOptions(writers="1,2", responders="3"), overwrite=True)
+    for head in (WRITER_GROUPS["quartet"][1], GENERIC_RESPONDER):
+        labelled = (single.label[:, :, head[0], head[1]] == 1) | (single.label[:, :, head[0], head[1]] == -1)  # [L, H]
+        found = [f"{a}.{b}" for a, b in zip(*labelled.nonzero())]
+        lines.append(f"  single-writer scan, responder {head[0]}.{head[1]}: labelled with "
+                     f"{', '.join(found) if found else 'no writer'}")
+    w = load_weights(model)
+    T = token_table(w, TableOptions("attn0-mlp0"))
+    members, (lR, hR) = WRITER_GROUPS["quartet"]
+    group = WriterGroup("quartet", members)
+    lines.append(f"  group {group.spec} -> responder {lR}.{hR} (labels need |mean percentile - 0.5| >= "
+                 f"{DEFAULT_MIN_EFFECT:g}):")
+    for member in members:
+        alone = group_statistics(w, T, WriterGroup("alone", (member,)), lR)[hR].mean_percentile
+        lines.append(f"    member {member[0]}.{member[1]} alone: mean percentile {alone:.3f}")
+    together = group_statistics(w, T, group, lR)[hR].mean_percentile
+    lines.append(f"    the group together: mean percentile {together:.3f}")
+    ref = reference_statistics(w, T, lR)
+    lo, hi = band(__import__("numpy").array([[s.mean_percentile for s in d] for d in ref["random"]]).T)
+    for head in (hR, GENERIC_RESPONDER[1]):
+        lines.append(f"  responder {lR}.{head} references: identity {ref['identity'][head].mean_percentile:.3f}, "
+                     f"unembedding {ref['unembedding'][head].mean_percentile:.3f}, random band "
+                     f"{lo[head]:.3f}-{hi[head]:.3f} ({ref['draws']} draws, seed {ref['seed']})")
+    lines.append(f"  responder {GENERIC_RESPONDER[0]}.{GENERIC_RESPONDER[1]} prefers each token's own key: its identity "
+                 "reference is as high as its labelled pairs, so any write of the token would do as well; responder "
+                 f"{lR}.{hR} answers the group far above its references")
+    before = Path(demo_model) if demo_model is not None else build_demo(root / "demo-model")
+    after = build_demo_after(root / "demo-model-after")
+    options = ScanOptions(**COMPARE_SELECTION)
+    scans = [run_scan(before, root / "demo-before.h5", options, overwrite=True).path,
+             run_scan(after, root / "demo-after.h5", options, overwrite=True).path]
+    comparison = compare_scans(scans, names=["before", "after"])
+    comparison.write(root / "demo-compare")
+    lines.append(f"two checkpoints of the demo model, before and after a change (the {AFTER_CHANGE} circuit "
+                 f"left out), compared into {root / 'demo-compare'}:")
+    lines += ["  " + line for line in comparison.summary().splitlines()[:-1]]
+    return lines
 
 
 def _blocks(basis: torch.Tensor) -> dict[str, torch.Tensor]:

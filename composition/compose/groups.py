@@ -161,5 +161,23 @@ def group_readouts(w: Weights, group: WriterGroup) -> torch.Tensor:
     return torch.cat(parts, dim=1)  # [V, n dh]
 
 
+def group_statistics(w: Weights, table: torch.Tensor, group: WriterGroup, responder_layer: int, ks=(1, 5, 10),
+                     rotation: torch.Tensor | None = None, precision: str = "fp32") -> list:
+    """Query-side statistics (row orientation, every row) of a group against every head of a later layer.
+
+    # table [V, d] -> [H_R] PairStats. For notebooks and the demo until the scan driver takes groups;
+    labels need the false discovery rate over all pairs of a scan, so none are given here.
+    """
+    from ..score.ranks import diagonal_midranks
+    from ..score.stats import summarise_many
+    from .factors import responder_keys
+
+    A = group_values(w, table, group)  # [V, n dh]
+    middles = group_query_middles(w, group, responder_layer, rotation)  # [H_R, n dh, dh]
+    K = responder_keys(w, table, responder_layer)  # [H_R, V, dh]
+    ranks = [diagonal_midranks(A @ m, k, precision=precision).numpy() for m, k in zip(middles, K)]
+    return summarise_many(ranks, K.shape[1], ks)
+
+
 __all__ = ["WriterGroup", "parse_group", "parse_groups", "group_values", "group_query_middles", "group_key_middles",
-           "group_value_middles", "group_query_left", "group_output", "group_readouts"]
+           "group_value_middles", "group_query_left", "group_output", "group_readouts", "group_statistics"]

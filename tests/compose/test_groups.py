@@ -131,3 +131,27 @@ def test_group_parser_normalises_and_checks_the_set():
         parse_groups(["late=2.1"], 3, 4)
     with pytest.raises(CompositionError, match="must come after every member"):
         group_query_middles(None, g, 1)
+
+
+def test_demo_group_is_labelled_only_together(tmp_path):
+    """Recovery of what was planted in the invented writer-group demo model (composition.demo.WRITER_GROUPS,
+    data_cards/demo-model.md): a single-writer scan labels no writer of responder 3.0, each member alone
+    moves its mean percentile by less than the label threshold, and the four members together by more."""
+    from composition import ScanOptions, run_scan
+    from composition.compose.groups import group_statistics
+    from composition.demo import WRITER_GROUPS, build_group_demo
+    from composition.score.stats import DEFAULT_MIN_EFFECT
+
+    model = build_group_demo(tmp_path / "g")
+    scan = run_scan(model, tmp_path / "g.h5", ScanOptions(writers="1,2", responders="3.0"))
+    members, (lR, hR) = WRITER_GROUPS["quartet"]
+    assert not np.isin(scan.label[:, :, lR, hR], (1, -1)).any()
+    w = load_weights(model)
+    T = token_table(w, TableOptions("attn0-mlp0"))
+    for m in members:
+        alone = group_statistics(w, T, WriterGroup("one", (m,)), lR)[hR]
+        assert 0.55 < alone.mean_percentile < 0.5 + DEFAULT_MIN_EFFECT - 0.02
+        assert alone.mean_percentile == pytest.approx(scan.mean_percentile[m + (lR, hR)], abs=1e-12)
+    together = group_statistics(w, T, WriterGroup("quartet", members), lR)[hR]
+    assert together.mean_percentile > 0.5 + DEFAULT_MIN_EFFECT + 0.03
+    assert together.p_value < 1e-10

@@ -149,3 +149,30 @@ def test_random_band_covers_the_stated_fraction_of_random_pairs(tmp_path):
                         total += 1
     assert total == 288
     assert 0.84 <= inside / total <= 0.95
+
+
+def test_demo_references_tell_generic_from_specific(tmp_path):
+    """Recovery of what was planted in the invented writer-group demo model (composition.demo,
+    data_cards/demo-model.md): responder 3.1 prefers each token's own key, so its identity and unembedding
+    references are as high as its pairs with the copying writers 1.2 and 2.2 (nothing above generic);
+    responder 3.0 answers the planted group far above its references and its random band."""
+    from composition.compose.groups import WriterGroup, group_statistics
+    from composition.demo import GENERIC_RESPONDER, GENERIC_WRITERS, WRITER_GROUPS, build_group_demo
+
+    w = load_weights(build_group_demo(tmp_path / "g"))
+    T = token_table(w, TableOptions("attn0-mlp0"))
+    ref = reference_statistics(w, T, 3)
+    draws = np.array([[s.mean_percentile for s in d] for d in ref["random"]]).T  # [H, draws]
+    ident = np.array([s.mean_percentile for s in ref["identity"]])
+    unemb = np.array([s.mean_percentile for s in ref["unembedding"]])
+    g = GENERIC_RESPONDER[1]
+    assert ident[g] > 0.95 and unemb[g] > 0.95
+    for writer in GENERIC_WRITERS:
+        mp = group_statistics(w, T, WriterGroup("one", (writer,)), 3)[g].mean_percentile
+        s = standing(mp, ident[g], unemb[g], draws[g])
+        assert mp > 0.95 and s["outside_band"] == 1 and abs(float(s["above_generic"])) < 0.05
+    members, (_, h) = WRITER_GROUPS["quartet"]
+    mp = group_statistics(w, T, WriterGroup("quartet", members), 3)[h].mean_percentile
+    s = standing(mp, ident[h], unemb[h], draws[h])
+    assert abs(ident[h] - 0.5) < 0.05 and abs(unemb[h] - 0.5) < 0.05
+    assert s["outside_band"] == 1 and float(s["random_z"]) > 5 and float(s["above_generic"]) > 0.15

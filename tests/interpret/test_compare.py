@@ -142,3 +142,27 @@ def test_mismatched_shapes_are_refused(scans, tmp_path):
         compare_scans([scans["A"], other])
     with pytest.raises(CompositionError, match="two or more"):
         compare_scans([scans["A"]])
+
+
+def test_demo_before_and_after_compare_shows_the_removed_pair(tmp_path):
+    """Recovery of what was planted in the invented demo model (composition.demo.build_demo_after leaves the
+    suppressor circuit out, data_cards/demo-model.md): of the compared pairs only 1.0 -> 2.3 changes label,
+    from attention-raising to neutral; every other tensor is the same, so pairs of other responders agree."""
+    from composition.demo import COMPARE_SELECTION, PLANTED_CIRCUITS, build_demo, build_demo_after
+
+    options = ScanOptions(**COMPARE_SELECTION)
+    before = run_scan(build_demo(tmp_path / "before"), tmp_path / "before.h5", options).path
+    after = run_scan(build_demo_after(tmp_path / "after"), tmp_path / "after.h5", options).path
+    comp = compare_scans([before, after])
+    (lU, hU), (lR, hR) = PLANTED_CIRCUITS["suppressor"][:2]
+    rows = comp.label_changes()
+    assert [(r["writer"], r["responder"], r["label_before"], r["label_after"]) for r in rows] == [
+        (f"{lU}.{hU}", f"{lR}.{hR}", "attention-raising", "neutral")]
+    moved = {tuple(int(x) for x in comp.index[p]) for p in np.flatnonzero(comp.difference(0, 1) != 0)}
+    assert moved and all(p[2:] == (lR, hR) for p in moved)  # only pairs of the changed responder move
+    assert (lU, hU, lR, hR) in comp.shortlisted  # a shortlisted suppressor before the change
+    from safetensors.numpy import load_file
+
+    a, b = load_file(str(tmp_path / "before" / "model.safetensors")), load_file(str(tmp_path / "after" / "model.safetensors"))
+    assert sorted(a) == sorted(b)
+    assert [n for n in a if not np.array_equal(a[n], b[n])] == [f"transformer.h.{lR}.attn.c_attn.weight"]
