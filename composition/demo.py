@@ -25,6 +25,12 @@ The other sides and the mediation parts (METHODS §3b) have circuits of their ow
   the writer only through the unembedding direction (``unembed``).
 
 Every planted weight carries a small random perturbation; all other heads are random.
+
+Beyond one head at a time (docs/groups.md, docs/compare.md): :func:`build_demo_after` writes the
+same model with one planted circuit left out (two checkpoints "before and after a change", to
+compare), and :func:`build_group_demo` a second, smaller invented model with a group of writers
+that a responder answers only together, and a responder with a generic preference for each
+token's own key. :func:`beyond_single_heads` builds, scans and compares them for the demo.
 """
 
 from __future__ import annotations
