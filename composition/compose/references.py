@@ -83,23 +83,26 @@ def haar_frame(d: int, k: int, rng: np.random.Generator) -> np.ndarray:
 
 def random_writers(w: Weights, table: torch.Tensor, responder_layer: int, draws: int = DEFAULT_DRAWS,
                    seed: int = DEFAULT_SEED) -> list[RandomWriter]:
-    """The random band's writers for responders of ``responder_layer``: ``draws`` draws, reproducible from
-    ``(seed, responder_layer)``. Donors are drawn uniformly from the heads of earlier layers. # table [V, d]"""
-    if responder_layer < 1:
-        raise CompositionError("a responder in layer 0 has no earlier head to draw a random writer from.")
+    """The random band's writers for responders of ``responder_layer``: draws ``0 .. draws-1``. # table [V, d]"""
     if draws < 2:
         raise CompositionError("the random band needs at least 2 draws.")
-    rng = np.random.default_rng([int(seed), int(responder_layer)])
-    d, H = w.d_model, w.n_heads
-    out: list[RandomWriter] = []
-    for _ in range(int(draws)):
-        donor = (int(rng.integers(responder_layer)), int(rng.integers(H)))
-        attn = w.layers[donor[0]].attn
-        S = torch.linalg.svdvals(attn.W_V[donor[1]].double() @ attn.W_O[donor[1]].double())[: w.d_head]  # [dh]
-        U, V = (torch.from_numpy(haar_frame(d, w.d_head, rng)) for _ in range(2))  # [d, dh] each
-        values = _normed(w, table, donor[0]) @ U  # [V, dh]
-        out.append(RandomWriter(donor, U, values, S[:, None] * V.T))  # [V, dh], [dh, d]
-    return out
+    return [random_writer(w, table, responder_layer, i, seed) for i in range(int(draws))]
+
+
+def random_writer(w: Weights, table: torch.Tensor, responder_layer: int, draw: int,
+                  seed: int = DEFAULT_SEED) -> RandomWriter:
+    """Draw number ``draw`` of the random band for ``responder_layer``, reproducible on its own from
+    ``(seed, responder_layer, draw)`` (a work unit can recompute one draw). The donor is drawn uniformly
+    from the heads of earlier layers. # table [V, d] -> values [V, dh], out [dh, d]"""
+    if responder_layer < 1:
+        raise CompositionError("a responder in layer 0 has no earlier head to draw a random writer from.")
+    rng = np.random.default_rng([int(seed), int(responder_layer), int(draw)])
+    donor = (int(rng.integers(responder_layer)), int(rng.integers(w.n_heads)))
+    attn = w.layers[donor[0]].attn
+    S = torch.linalg.svdvals(attn.W_V[donor[1]].double() @ attn.W_O[donor[1]].double())[: w.d_head]  # [dh]
+    U, V = (torch.from_numpy(haar_frame(w.d_model, w.d_head, rng)) for _ in range(2))  # [d, dh] each
+    values = _normed(w, table, donor[0]) @ U  # [V, dh]
+    return RandomWriter(donor, U, values, S[:, None] * V.T)  # [V, dh], [dh, d]
 
 
 def _normed(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
@@ -187,5 +190,5 @@ def reference_statistics(w: Weights, table: torch.Tensor, responder_layer: int, 
 
 
 __all__ = ["REFERENCES", "DEFAULT_DRAWS", "DEFAULT_SEED", "BAND", "identity_queries", "unembedding_queries",
-           "RandomWriter", "haar_frame", "random_writers", "random_middles", "band", "standing",
+           "RandomWriter", "haar_frame", "random_writer", "random_writers", "random_middles", "band", "standing",
            "reference_statistics"]
