@@ -70,7 +70,7 @@ def side_notes(scan: Scan) -> list[str]:
     """What a scan's labels mean and whether they feed the prediction, and the readout note: one
     sentence each, for every output that shows the scan's labels."""
     side = sides.for_scan(scan.attrs)
-    notes = [f"{side.title}: {side.words.meaning}", f"{side.title}: {side.prediction_note}"]
+    notes = [f"{side.title}: {side.words.meaning}", side.prediction_note]
     return notes + [n for n in (readout_note(scan.attrs.get("readout")),) if n]
 
 

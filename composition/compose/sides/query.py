@@ -20,8 +20,8 @@ class Query(Side):
     words = RESPONSE
     fixed_name = "keys"
     feeds_prediction = True
-    prediction_note = ("its labels are the responder's response s_QK of the compensation prediction "
-                       "(METHODS §6), with the writer's and the responder's own OV labels.")
+    prediction_note = ("query-side labels of the full write are the responder's response s_QK of the "
+                       "compensation prediction (METHODS §6), with the writer's and the responder's own OV labels.")
 
     def fixed(self, cache, layer):  # -> [H, V, dh] responder keys
         return cache.keys(layer)
@@ -40,7 +40,7 @@ class QueryPart(Query):
         self.words = Words(RESPONSE.raising, RESPONSE.lowering, RESPONSE.neutral,
                            f"the query side's words, for the write's {direction} alone: read them as mediation of "
                            "a pair labelled on the full write, beside the fraction of the write this part carries.")
-        self.prediction_note = (f"labels of the {part} part do not feed the compensation prediction, which needs "
+        self.prediction_note = (f"labels of the query side's {part} part do not feed the compensation prediction, which needs "
                                 "the full write (METHODS §6); they say through which direction a full-write "
                                 "label arises.")
 
