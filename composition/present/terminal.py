@@ -149,7 +149,7 @@ def pair(detail, ks, table: str, orientation: str, top: int, chosen, readout: st
         tied = detail.ties(which)
         how = (f"{tied} tokens tie at this end; listed: the first {min(top, tied)} by token id" if tied > 1
                else f"ranked by the diagonal's rank, ties by token id")
-        lines.append(f"{which}-ranked diagonals (most {word}; {how}):")
+        lines.append(f"{which}-ranked diagonals (toward '{word}'; {how}):")
         lines += [_token_line(row) for row in detail.extremes(top, which)]
     if chosen:
         lines.append("chosen tokens:")
