@@ -19,6 +19,7 @@ import click
 
 from .compose import sides
 from .errors import CompositionError
+from .extract import FAMILIES
 from .extract.tables import TABLES
 from .score.ranks import DEVICES, PRECISIONS, check_device
 from .score.sampling import DEFAULT_FIRST_ROWS, Sampling
@@ -291,6 +292,9 @@ class _Parsed(click.ParamType):
     def convert(self, value, param, ctx):
         return value if value is None else self.parse(value)
 
+    def get_metavar(self, *args, **kwargs) -> str:
+        return self.name
+
 
 def _choice(option: str, choices):
     return _Parsed("|".join(choices), lambda value: member(option, value, choices))
@@ -299,7 +303,7 @@ def _choice(option: str, choices):
 _OPTIONS = {
     "family": click.option(
         "--family", default=None, metavar="NAME",
-        help="Read the checkpoint as this family instead of detecting it: gpt2, gpt-neox, llama, bert."),
+        help=f"Read the checkpoint as this family instead of detecting it: {', '.join(FAMILIES)}."),
     "layout": click.option(
         "--layout", default=None, type=click.Path(), metavar="FILE.json",
         help="A layout file mapping tensor names to the canonical weights (docs/families.md)."),
