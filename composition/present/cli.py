@@ -287,18 +287,13 @@ def shortlist(scan_file, heads_file, csv_file, parts):
 
 def _print_mediation(full, part_files) -> None:
     """The mediation table: each labelled pair's share in the full write and in each part."""
-    import numpy as np
-
     from ..interpret.predict import mediation_rows
 
     parts = {}
     for f in part_files:
         part = load_scan(f)
         parts[str(part.attrs.get("query_part"))] = part
-    rows = [r for r in mediation_rows(full, parts) if not all(np.isnan(r[p]) for p in parts)]
-    order = [s.part for s in sides.every()]
-    names = sorted(parts, key=lambda p: order.index(p) if p in order else len(order))
-    _echo(terminal.mediation(rows, names))
+    _echo(terminal.mediation(mediation_rows(full, parts), list(parts)))
 
 
 @main.command()

@@ -105,7 +105,11 @@ def shortlist(candidates, scan=None) -> list[str]:
 
 
 def mediation(rows: list[dict], names: list[str]) -> list[str]:
-    """The mediation table: each labelled pair's share in the full write and in each part."""
+    """The mediation table: each labelled pair's share in the full write and in each part (parts in
+    registry order; pairs scanned in no part are left out)."""
+    order = [s.part for s in sides.every()]
+    names = sorted(names, key=lambda p: order.index(p) if p in order else len(order))
+    rows = [r for r in rows if not all(np.isnan(r[p]) for p in names)]
     lines = ["mediation of the query side's labelled pairs: share (and write fraction) per part",
              f"  {'writer':<7} {'responder':<9}  {'share':<10} {'full':>6}" + "".join(f" {p:>16}" for p in names)]
     for r in rows:

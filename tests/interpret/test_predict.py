@@ -115,3 +115,23 @@ def test_readout_note_only_for_models_without_lm_head():
     input-embedding`` (composition.extract.weights.Weights.readout)."""
     assert "no LM head" in readout_note("input-embedding")
     assert readout_note("tied") is None and readout_note("lm-head") is None and readout_note(None) is None
+
+
+def test_shortlist_and_report_state_the_readout_assumption(tmp_path):
+    """A BERT encoder without its masked-LM head is read with the input embedding as readout: the
+    shortlist and the report, which rest on copying/suppressing labels, say so; a GPT-2 model's do
+    not. Reference library: transformers (BertModel, via tests/oracles/hf_models.py)."""
+    from ..oracles import hf_models as hf
+    from ..small_checkpoint import random_gpt2
+
+    bert = tmp_path / "bert"
+    hf.build("bert-base", bert)
+    gpt2, _, _ = random_gpt2(str(tmp_path / "gpt2"), L=2)
+    for model, expected in ((bert, True), (gpt2, False)):
+        path = tmp_path / f"{'bert' if expected else 'gpt2'}.h5"
+        run_scan(model, path, ScanOptions())
+        res = CliRunner().invoke(main, ["shortlist", str(path)])
+        assert res.exit_code == 0, res.output
+        assert ("no LM head" in res.output) == expected
+        page = write_report(path, tmp_path / f"report-{path.stem}").read_text()
+        assert ("no LM head" in page) == expected
