@@ -87,6 +87,13 @@ def min_effect(value) -> float:
     return v
 
 
+def calibrate(value) -> float:
+    v = _number("--calibrate", value)
+    if not 0.1 <= v <= 600:
+        raise CompositionError(f"--calibrate must lie between 0.1 and 600 seconds, not {v:g}.")
+    return v
+
+
 def until_ci(value) -> float | None:
     """``--until-ci``: a number here; its range (0, 1) is the sampling's own check."""
     return None if value is None else _number("--until-ci", value)
@@ -359,6 +366,9 @@ _OPTIONS = {
         "--until-ci", type=_Parsed("W", until_ci), default=None, metavar="W",
         help="Sample rows in growing batches until every share's 95% interval is narrower than W (0 < W < 1) "
              "or the pair's label is decided."),
+    "calibrate": click.option(
+        "--calibrate", type=_Parsed("SECONDS", calibrate), default=3.0, show_default=True,
+        help="How long to time the ranks kernel on this machine (0.1 to 600 seconds)."),
 }
 
 GROUPS = {

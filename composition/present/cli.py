@@ -130,9 +130,7 @@ def _run(checkpoint, out, options, overwrite, quiet, **execution):
 
 @main.command()
 @click.argument("checkpoint", type=click.Path())
-@click.option("--calibrate", type=click.FloatRange(min=0.1, max=600), default=3.0, show_default=True,
-              metavar="SECONDS", help="How long to time the ranks kernel on this machine (0.1 to 600).")
-@opt.use("checkpoint", "selection", "matrix", "labels", "run")
+@opt.use("calibrate", "checkpoint", "selection", "matrix", "labels", "run")
 def plan(checkpoint, calibrate, **kw):
     """Before a long scan: pairs, rows, entries, estimated wall time and peak memory, on any side."""
     from ..run.plan import plan_scan

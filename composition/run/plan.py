@@ -85,6 +85,8 @@ class Plan:
 
 
 def _duration(seconds: float) -> str:
+    if seconds < 0.1:
+        return f"{seconds * 1000:.1f} ms"
     if seconds < 90:
         return f"{seconds:.1f} s"
     if seconds < 5400:
