@@ -23,7 +23,6 @@ from ..errors import CompositionError
 from ..extract.tables import apply_norm, norm_linear_part
 from ..extract.weights import Norm, Weights
 
-ORIENTATIONS = ("row", "column")
 _IDENTITY = Norm("identity", None, None)
 _BLOCK = 4096
 
@@ -82,10 +81,7 @@ def query_middles(w: Weights, writer_layer: int, writer_head: int, responder_lay
     ``rotation`` ``[dh, dh]``: the rotary ``M(delta)`` or its average over offsets
     (composition.extract.rotary), folded in on the right; None for no rotation (delta = 0).
     """
-    if responder_layer <= writer_layer:
-        raise CompositionError(
-            f"responder layer {responder_layer} must come after writer layer {writer_layer}."
-        )
+    _check_layers(writer_layer, responder_layer)
     W_O = w.layers[writer_layer].attn.W_O[writer_head].double()  # [dh, d]
     lin = residual_path(w, writer_layer, responder_layer)  # [d, d]
     W_Q = w.layers[responder_layer].attn.W_Q.double()  # [H, d, dh]
@@ -102,12 +98,7 @@ def query_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.
     # A_writer [V, dh], middle [dh, dh], K_responder [V, dh] -> left [V, dh], right [V, dh]
     Row orientation: ``(A C, K)``; column orientation: ``(K, A C)`` (the transpose).
     """
-    Q = A_writer @ middle  # [V, dh]
-    if orientation == "row":
-        return Q, K_responder
-    if orientation == "column":
-        return K_responder, Q
-    raise CompositionError(f"--orientation {orientation!r} is not one of: {', '.join(ORIENTATIONS)}.")
+    return _oriented(A_writer @ middle, K_responder, orientation)  # [V, dh], [V, dh]
 
 
 # ---------------------------------------------------------------------------
@@ -129,17 +120,15 @@ def query_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.
 # induction pattern: Olsson et al. 2022, "In-context Learning and Induction Heads".
 # ---------------------------------------------------------------------------
 
-SIDES = ("query", "key", "value")
-QUERY_PARTS = ("full", "unembed", "rest")
-
-
 def _oriented(row_left: torch.Tensor, row_right: torch.Tensor, orientation: str) -> tuple[torch.Tensor, torch.Tensor]:
-    """Row orientation as given; column orientation swaps the factors. # [V, r], [V, r] -> [V, r], [V, r]"""
-    if orientation == "row":
-        return row_left, row_right
-    if orientation == "column":
-        return row_right, row_left
-    raise CompositionError(f"--orientation {orientation!r} is not one of: {', '.join(ORIENTATIONS)}.")
+    """Row orientation as given; column orientation swaps the factors. # [V, r], [V, r] -> [V, r], [V, r]
+
+    Options are validated where they enter (composition.options, composition.compose.sides); a
+    wrong value here is a programming error.
+    """
+    if orientation not in ("row", "column"):
+        raise ValueError(f"orientation {orientation!r}")
+    return (row_left, row_right) if orientation == "row" else (row_right, row_left)
 
 
 def _check_layers(writer_layer: int, responder_layer: int) -> None:
@@ -219,14 +208,12 @@ def responder_readouts(w: Weights, layer: int) -> torch.Tensor:
     return torch.einsum("hed,dv->hve", W_O @ lin, W_U)  # [H, V, dh]
 
 
-def value_side(A_writer: torch.Tensor, middle: torch.Tensor, readout: torch.Tensor,
-               orientation: str = "row") -> tuple[torch.Tensor, torch.Tensor]:
-    """The value side's two factors, ``F[t, u] = (A_U middle)[t] . readout[u]``, row orientation only.
+def value_side(A_writer: torch.Tensor, middle: torch.Tensor, readout: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """The value side's two factors, ``F[t, u] = (A_U middle)[t] . readout[u]``, row orientation only
+    (``composition.compose.sides.value`` refuses columns).
 
     # A_writer [V, dh], middle [dh, dh], readout [V, dh] -> left [V, dh], right [V, dh]
     """
-    if orientation != "row":
-        raise CompositionError("--side value ranks within rows only (fixed written token); use --orientation row.")
     return A_writer @ middle, readout  # [V, dh], [V, dh]
 
 
@@ -276,8 +263,6 @@ def query_part_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: t
     ``full``: the whole write (as :func:`query_side`); ``unembed``: ``alpha_t u_t``, i.e. the rows of
     ``unembed_query`` scaled by ``alpha``; ``rest``: the full query factor minus the unembed one.
     """
-    if part not in QUERY_PARTS:
-        raise CompositionError(f"--query-part {part!r} is not one of: {', '.join(QUERY_PARTS)}.")
     if part == "full":
         return query_side(A_writer, middle, K_responder, orientation)
     projected = alpha[:, None] * unembed_query  # [V, dh]
@@ -291,8 +276,6 @@ def write_fraction(A_writer: torch.Tensor, W_O_writer: torch.Tensor, part: str,
 
     # A_writer [V, dh], W_O_writer [dh, d], alpha [V] -> float
     """
-    if part not in QUERY_PARTS:
-        raise CompositionError(f"--query-part {part!r} is not one of: {', '.join(QUERY_PARTS)}.")
     W_O = W_O_writer.double()  # [dh, d]
     total = ((A_writer @ (W_O @ W_O.T)) * A_writer).sum(1)  # [V] |o_U(t)|^2
     keep = total > 0

@@ -1,24 +1,28 @@
 """One pair in depth: every token's diagonal rank, the percentile histogram, the tokens
-ranked highest and lowest, and where chosen tokens sit (METHODS §3-§4).
+ranked highest and lowest, and where chosen tokens sit (METHODS §3-§4), on any side.
 
-The ranks come from the same factors and the same exact kernel as the scan, so the
-statistics printed here equal the scan file's for the same options.
+The ranks come from the same factors (the side registry, ``composition.compose.sides``) and
+the same exact kernel as the scan, so the statistics printed here equal the scan file's for
+the same options.
 """
 
 from __future__ import annotations
 
+import difflib
 from dataclasses import dataclass
 
 import numpy as np
 
+from ..compose import sides
+from ..compose.sides import Side, SideFactors
 from ..errors import CompositionError
-from ..compose.factors import input_norm, query_middles, query_side, responder_keys, writer_values
-from .heads import eigen_copying_score
+from ..extract.rotary import offsets_rotation
+from ..extract.tables import TableOptions, token_table
+from ..extract.vocabulary import Vocabulary
+from ..extract.weights import Weights
 from ..score.ranks import diagonal_midranks
 from ..score.stats import DEFAULT_K, PairStats, summarise
-from ..extract.tables import TableOptions, apply_norm, norm_linear_part, token_table
-from ..extract.weights import Weights
-from ..extract.vocabulary import Vocabulary
+from .heads import eigen_copying_score, ov_factors
 
 Head = tuple[int, int]
 
@@ -42,6 +46,7 @@ class PairDetail:
     writer_write: HeadWrite
     responder_write: HeadWrite
     vocabulary: Vocabulary | None
+    side: Side = sides.get("query")
 
     @property
     def percentiles(self) -> np.ndarray:
@@ -52,9 +57,14 @@ class PairDetail:
         return self.vocabulary.text(token_id) if self.vocabulary else f"#{token_id}"
 
     def extremes(self, n: int = 15, which: str = "highest") -> list[dict]:
-        """The ``n`` tokens whose diagonal ranks highest (or lowest), ties by token id."""
+        """The ``n`` tokens whose diagonal ranks highest (or lowest); among equal ranks, the lowest ids first."""
         order = np.lexsort((np.arange(self.ranks.shape[0]), self.ranks if which == "highest" else -self.ranks))
         return [self.row(int(t)) for t in order[:n]]
+
+    def ties(self, which: str = "highest") -> int:
+        """How many tokens share the most extreme rank at that end (1 when none tie)."""
+        extreme = self.ranks.min() if which == "highest" else self.ranks.max()
+        return int((self.ranks == extreme).sum())
 
     def row(self, token_id: int) -> dict:
         return {"token": token_id, "text": self.text(token_id), "rank": float(self.ranks[token_id]),
@@ -67,28 +77,48 @@ class PairDetail:
                 "percentile": self.percentiles}
 
 
+def uncased(vocabulary: Vocabulary) -> bool:
+    """True when the vocabulary's word pieces are lower case (an uncased tokenizer lowercases its input).
+
+    Pieces in brackets or angle brackets (``[CLS]``, ``<s>``) are special tokens and do not count.
+    """
+    words = [p for p in vocabulary.pieces if p and p.isalpha() and not p.startswith(("[", "<"))]
+    return bool(words) and sum(p != p.lower() for p in words) <= 0.001 * len(words)
+
+
 def resolve_tokens(items: list[str], vocabulary: Vocabulary | None, size: int) -> list[int]:
-    """Token ids for ``--tokens`` items: a vocabulary piece or its text first, else an integer id."""
+    """Token ids for ``--tokens`` items: a vocabulary piece or its text first (lower-cased for an
+    uncased vocabulary), else an integer id; an unknown item is refused with near matches."""
     out = []
+    lower = vocabulary is not None and uncased(vocabulary)
     for item in items:
         found = vocabulary.lookup(item) if vocabulary else None
+        if found is None and lower:
+            found = vocabulary.lookup(item.lower())
         if found is None:
             try:
                 found = int(item)
             except ValueError:
-                where = f"the vocabulary of {vocabulary.source}" if vocabulary else "the checkpoint (it has no tokenizer.json; give ids)"
-                raise CompositionError(f"--tokens item {item!r} is not a token of {where}.") from None
+                raise CompositionError(_not_found(item, vocabulary)) from None
             if not 0 <= found < size:
                 raise CompositionError(f"--tokens id {found} is outside the vocabulary of {size} tokens.")
         out.append(found)
     return out
 
 
+def _not_found(item: str, vocabulary: Vocabulary | None) -> str:
+    if vocabulary is None:
+        return f"--tokens item {item!r} is not a token of the checkpoint (it has no tokenizer.json; give ids)."
+    texts = sorted({vocabulary.text(i) for i, p in enumerate(vocabulary.pieces) if p is not None})
+    near = difflib.get_close_matches(item, texts, n=3, cutoff=0.6)
+    hint = f"; near matches: {', '.join(repr(t) for t in near)}" if near else ""
+    return f"--tokens item {item!r} is not a token of the vocabulary of {vocabulary.source}{hint}."
+
+
 def _head_write(w: Weights, table, head: Head, ks) -> HeadWrite:
+    """The head's OV token matrix (METHODS §5): diagonal ranks and eigenvalue copying score."""
     layer, h = head
-    A = apply_norm(input_norm(w, layer), table) @ w.layers[layer].attn.W_V[h].double()  # [V, dh]
-    lin_f = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
-    B = (w.layers[layer].attn.W_O[h].double() @ lin_f @ w.W_U.double()).T.contiguous()  # [V_out, dh]
+    A, B = (f[h] for f in ov_factors(w, table, layer))  # [V, dh], [V_out, dh]
     n = min(A.shape[0], B.shape[0])
     ranks = diagonal_midranks(A[:n], B, rows=np.arange(n)).numpy()  # [n]
     s = summarise(ranks, B.shape[0], ks)
@@ -96,8 +126,11 @@ def _head_write(w: Weights, table, head: Head, ks) -> HeadWrite:
 
 
 def pair_detail(w: Weights, writer: Head, responder: Head, options: TableOptions = TableOptions(),
-                orientation: str = "row", ks=DEFAULT_K, vocabulary: Vocabulary | None = None) -> PairDetail:
-    """Rank every token of one (writer, responder) pair, with both heads' own writes."""
+                orientation: str = "row", ks=DEFAULT_K, vocabulary: Vocabulary | None = None,
+                side: str = "query", query_part: str = "full",
+                rotary_offsets: tuple[int, int] | None = None) -> PairDetail:
+    """Rank every token of one (writer, responder) pair on one side, with both heads' own writes."""
+    chosen = sides.get(side, query_part, orientation)
     for name, (layer, head) in (("writer", writer), ("responder", responder)):
         if not (0 <= layer < w.n_layers and 0 <= head < w.n_heads):
             raise CompositionError(f"{name} {layer}.{head} is not a head of this model "
@@ -106,18 +139,19 @@ def pair_detail(w: Weights, writer: Head, responder: Head, options: TableOptions
         raise CompositionError(f"responder {responder[0]}.{responder[1]} must be in a later layer than "
                                f"writer {writer[0]}.{writer[1]}.")
     T = token_table(w, options)  # [V, d]
-    A = writer_values(w, T, writer[0])[writer[1]]  # [V, dh]
-    K = responder_keys(w, T, responder[0])[responder[1]]  # [V, dh]
-    middle = query_middles(w, writer[0], writer[1], responder[0])[responder[1]]  # [dh, dh]
-    left, right = query_side(A, middle, K, orientation)  # [V, dh], [V, dh]
+    cache = SideFactors(w, T, offsets_rotation(w, rotary_offsets))
+    left, right = chosen.pair_factors(cache, writer, responder, orientation)  # [V, dh], [V, dh]
     ranks = diagonal_midranks(left, right).numpy()  # [V]
     return PairDetail(writer, responder, ranks, w.vocab_size, summarise(ranks, w.vocab_size, ks),
-                      _head_write(w, T, writer, ks), _head_write(w, T, responder, ks), vocabulary)
+                      _head_write(w, T, writer, ks), _head_write(w, T, responder, ks), vocabulary, chosen)
 
 
-def parse_head(label: str, option: str) -> Head:
-    """``"4.3"`` -> ``(4, 3)``."""
-    parts = label.strip().split(".")
-    if len(parts) != 2 or not all(p.isdigit() for p in parts):
-        raise CompositionError(f"{option} {label!r} is not a head label of the form layer.head, e.g. 4.3.")
-    return int(parts[0]), int(parts[1])
+def check_scan(scan, detail: PairDetail, w: Weights) -> None:
+    """A scan file given to ``pair --scan`` must be of this model and of the side and part asked for."""
+    if scan.attrs.get("weights_fingerprint") not in (None, w.fingerprint()):
+        raise CompositionError(f"{scan.path} was computed from other weights than this checkpoint.")
+    found = sides.for_scan(scan.attrs)
+    if found is not detail.side:
+        raise CompositionError(f"{scan.path} is a scan of the {found.title}, not of the {detail.side.title}; give "
+                               f"--side {found.name}" + (f" --query-part {found.part}" if found.part != "full" else "")
+                               + " to compare this pair with it.")

@@ -11,6 +11,10 @@ neutral sign on any of the three predicts nothing (**none**).
 The shortlist names candidate **suppressor heads** (suppressing, and attention-raising
 towards at least one writer) and **back-up heads** (copying, and attention-lowering towards
 at least one writer), each with the writers it responds to.
+
+Only a scan whose side feeds the prediction (the query side's full write, METHODS §6; the
+registry ``composition.compose.sides`` says which) gives signs, predictions and a shortlist;
+every other scan's labels are reported in its side's own words, with its side's note.
 """
 
 from __future__ import annotations
@@ -19,6 +23,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..compose import sides
 from .heads import HEAD_LABEL_WORDS, HeadData
 from ..store.scanfile import Scan
 from ..score.stats import LABEL_NOT_COMPUTED
@@ -26,8 +31,9 @@ from ..score.stats import LABEL_NOT_COMPUTED
 COMPENSATING, NONE, REINFORCING = -1, 0, 1
 PREDICTION_WORDS = {COMPENSATING: "compensating", NONE: "none", REINFORCING: "reinforcing",
                     LABEL_NOT_COMPUTED: "not computed"}
-RESPONSE_WORDS = {1: "attention-raising", -1: "attention-lowering", 0: "neutral",
-                  LABEL_NOT_COMPUTED: "not computed"}
+RESPONSE_WORDS = {label: sides.get("query").words[label] for label in (1, -1, 0, LABEL_NOT_COMPUTED)}
+READOUT_NOTE = ("this model has no LM head: its input embedding is taken as the readout, so copying and "
+                "suppressing labels (and the predictions built on them) assume the embedding reads the logits.")
 SHORTLIST_KINDS = {"suppressor": (+1, -1), "back-up": (-1, +1)}  # kind: (s_QK, s_R)
 
 
@@ -54,9 +60,41 @@ def compensation(pair_labels: np.ndarray, head_labels: np.ndarray) -> dict[str, 
             "prediction": prediction}
 
 
+def readout_note(readout: str | None) -> str | None:
+    """The sentence every output with copying/suppressing labels adds when the model has no LM head
+    (``Weights.readout``, the scan attribute ``readout``)."""
+    return READOUT_NOTE if readout == "input-embedding" else None
+
+
+def side_notes(scan: Scan) -> list[str]:
+    """What a scan's labels mean and whether they feed the prediction, and the readout note: one
+    sentence each, for every output that shows the scan's labels."""
+    side = sides.for_scan(scan.attrs)
+    notes = [f"{side.title}: {side.words.meaning}", side.prediction_note]
+    return notes + [n for n in (readout_note(scan.attrs.get("readout")),) if n]
+
+
+def scan_compensation(scan: Scan, heads: HeadData) -> dict[str, np.ndarray]:
+    """``compensation`` of a scan's labels where its side feeds the prediction (METHODS §6); for any
+    other side every sign of the response and every prediction is LABEL_NOT_COMPUTED.
+
+    # -> {"s_writer", "s_response", "s_responder", "prediction"}: [L, H, L, H] int8
+    """
+    if sides.for_scan(scan.attrs).feeds_prediction:
+        return compensation(scan.label, heads.heads["label"])
+    return compensation(np.full(scan.label.shape, LABEL_NOT_COMPUTED, np.int8), heads.heads["label"])
+
+
+def response_words(scan: Scan, labels: np.ndarray) -> np.ndarray:
+    """Each label in the words of the scan's side. # labels [P] -> [P] str"""
+    words = sides.for_scan(scan.attrs).words
+    return np.array([words[int(v)] for v in np.asarray(labels).reshape(-1)])
+
+
 def pair_table(scan: Scan, heads: HeadData | None = None) -> dict[str, np.ndarray]:
     """The scan's tidy table of computed pairs, extended with model-space scores, the three
-    signs and the compensation prediction when head data is given. # -> {column: [P]}"""
+    signs and the compensation prediction when head data is given (signs of the response and
+    predictions only where the scan's side feeds them). # -> {column: [P]}"""
     table = scan.pairs()
     if heads is None:
         return table
@@ -70,11 +108,11 @@ def pair_table(scan: Scan, heads: HeadData | None = None) -> dict[str, np.ndarra
     for kind in ("q", "k", "v"):
         mean, sd = heads.baseline(kind)
         table[f"{kind}_composition_z"] = (ms[f"{kind}_composition"][sel] - mean) / sd
-    comp = compensation(scan.label, heads.heads["label"])
+    comp = scan_compensation(scan, heads)
     for name, data in comp.items():
         table[name] = data[sel]
     table["prediction_word"] = np.array([PREDICTION_WORDS[int(v)] for v in table["prediction"]])
-    table["response_word"] = np.array([RESPONSE_WORDS[int(v)] for v in table["label"]])
+    table["response_word"] = response_words(scan, table["label"])
     return table
 
 
@@ -96,12 +134,15 @@ class Candidate:
 
 
 def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
-    """Candidate suppressor and back-up heads, ranked.
+    """Candidate suppressor and back-up heads, ranked; none for a scan whose side does not feed
+    the compensation prediction (its labels are not the responder's query response).
 
     Rank key: the smaller of the two effect sizes that put the head on the list, the
     head's own ``|OV mean percentile - 1/2|`` and the pair ``|mean percentile - 1/2|`` of its
     strongest writer (both must be large for a strong candidate); ties by q-value.
     """
+    if not sides.for_scan(scan.attrs).feeds_prediction:
+        return []
     head_label = heads.heads["label"]  # [L, H]
     ov_mp = heads.heads["mean_percentile"]
     comp = compensation(scan.label, head_label)
@@ -151,10 +192,11 @@ def shortlist_rows(candidates: list[Candidate]) -> list[dict]:
 
 
 def pair_prediction(scan: Scan, heads: HeadData, writer: tuple[int, int], responder: tuple[int, int]) -> dict:
-    """The scan's label, the three signs and the prediction of one pair (words)."""
+    """The scan's label in its side's words, the three signs and the prediction of one pair (the
+    prediction is "not computed" where the scan's side does not feed it)."""
     i = (*writer, *responder)
-    comp = compensation(scan.label, heads.heads["label"])
-    return {"response": RESPONSE_WORDS[int(scan.label[i])],
+    comp = scan_compensation(scan, heads)
+    return {"response": sides.for_scan(scan.attrs).words[int(scan.label[i])],
             "q_value": float(scan.q_value[i]),
             "s_writer": int(comp["s_writer"][i]), "s_response": int(comp["s_response"][i]),
             "s_responder": int(comp["s_responder"][i]),

@@ -26,6 +26,9 @@ from contextlib import contextmanager
 from typing import Callable
 
 from ..errors import CompositionError
+from ..extract import load_weights
+from ..options import result_options
+from .units import compute_unit, unit_factors
 
 _LOCK = threading.Lock()
 _STATE: dict = {}
@@ -168,17 +171,12 @@ class _WorkerTrouble(Exception):
 
 def _compute_remote(checkpoint: str, fingerprint: str, options, unit, torch_threads: int | None) -> dict:
     """The task a worker runs: one unit's ``{(writer, responder): PairStats}``."""
-    from .scan import compute_unit
-
     with _LOCK:  # one unit at a time per process: the factors are shared and large
         factors = _worker_factors(checkpoint, fingerprint, options, torch_threads)
         return compute_unit(factors, unit, options)
 
 
 def _worker_factors(checkpoint: str, fingerprint: str, options, torch_threads: int | None):
-    from ..extract import load_weights
-    from .scan import result_options, unit_factors
-
     key = (checkpoint, fingerprint, json.dumps(result_options(options), sort_keys=True))
     if _STATE.get("key") != key:
         _STATE.clear()

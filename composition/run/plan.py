@@ -1,11 +1,13 @@
 """``composition plan``: what a scan will cost on this machine, before it runs.
 
 The estimate adds up the stages of a scan, each timed here for a few seconds:
-loading the checkpoint (timed for real), the token table and the per-layer writer values
-and responder keys (timed on the first rows of the vocabulary and scaled to all of it),
-per pair the query factor and per responder layer the packed keys (timed on factors of
-the model's size), and the ranks themselves: rows x vocabulary entries at the rate the
-ranks kernel reaches on Gaussian factors of the model's vocabulary and head width.
+loading the checkpoint (timed for real), the token table, the per-layer writer values and the
+side's per-layer responder factor (keys, queries or readouts: whatever the side in
+``composition.compose.sides`` builds, timed on the first rows of the vocabulary and scaled to
+all of it), per pair the side's written-token factor (timed on the side's own factors, scaled
+likewise) and the packing of the right factor (timed on factors of the model's size), and the
+ranks themselves: rows x vocabulary entries at the rate the ranks kernel reaches on Gaussian
+factors of the model's vocabulary and head width.
 
 A finished scan also profiles the OV circuit of every head it scanned (``composition.interpret.heads``):
 one full-vocabulary diagonal rank per head, counted at the same kernel rate.
@@ -27,13 +29,16 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from ..compose import sides
+from ..compose.sides import Product, SideFactors
 from ..extract import load_weights
-from ..compose.factors import query_side, responder_keys, writer_values
+from ..extract.rotary import offsets_rotation
 from ..score.ranks import RowProduct, kernel_available, kernel_rate_entries, prepare_right
 from ..score.sampling import expected_rows
 from ..score.stats import summarise_many
 from ..extract.tables import TableOptions, token_table
 from ..extract.weights import Weights
+from .units import scan_pairs, work_units
 
 _SUBSET = 2048
 
@@ -52,6 +57,7 @@ class Plan:
     rate: float  # entries per second of the ranks kernel here
     engine: str
     precision: str
+    side: str
     seconds: dict  # stage -> estimated seconds
     peak_bytes: int
 
@@ -63,21 +69,24 @@ class Plan:
         s = self.seconds
         lines = [
             f"checkpoint         {self.checkpoint}",
+            f"side               {self.side}",
             f"pairs              {self.pairs} ({self.units} work units)",
             f"rows per pair      {self.rows_per_pair} of {self.vocab}"
             + (f" (expected; at most {self.rows_most})" if self.rows_most != self.rows_per_pair else ""),
             f"entries            {self.entries:.3e} ({self.vocab} keys per row, head width {self.d_head})",
             f"ranks kernel       {self.rate / 1e9:.3f} G entries/s here ({self.engine}, {self.precision})",
-            f"estimated time     {_duration(self.total_seconds)}"
-            f"  (ranks {_duration(s['ranks'])}, factors {_duration(s['factors'] + s['table'])}, "
-            f"per pair {_duration(s['per_pair'])}, head profiles {_duration(s['heads'])}, "
-            f"load {_duration(s['load'] + s['write'])})",
+            f"estimated time     {_duration(self.total_seconds)} in all; totals over the scan: "
+            f"ranks {_duration(s['ranks'])}, per-layer factors {_duration(s['factors'] + s['table'])}, "
+            f"per-pair factors {_duration(s['per_pair'])} ({_duration(s['per_pair'] / max(1, self.pairs))} a pair), "
+            f"head profiles {_duration(s['heads'])}, load and write {_duration(s['load'] + s['write'])}",
             f"peak memory        {self.peak_bytes / 2**30:.2f} GiB",
         ]
         return "\n".join(lines)
 
 
 def _duration(seconds: float) -> str:
+    if seconds < 0.1:
+        return f"{seconds * 1000:.1f} ms"
     if seconds < 90:
         return f"{seconds:.1f} s"
     if seconds < 5400:
@@ -120,8 +129,6 @@ def _tensor_bytes(v) -> int:
 
 def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     """Estimate the wall time and peak memory of ``run_scan(checkpoint, ..., options)``."""
-    from .scan import scan_pairs, work_units
-
     options.validate()
     w, t_load = (checkpoint, 0.0) if isinstance(checkpoint, Weights) else _timed(load_weights, checkpoint, options.family, options.layout)
     rss_loaded = _rss_bytes()
@@ -130,16 +137,22 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     V, H, dh, d = w.vocab_size, w.n_heads, w.d_head, w.d_model
 
     # token table and per-layer factors, on the first rows of the vocabulary
+    side = sides.get(options.side, options.query_part, options.orientation)
     n_sub = min(V, _SUBSET)
-    w_sub = dataclasses.replace(w, W_E=w.W_E[:n_sub])
+    w_sub = dataclasses.replace(w, W_E=w.W_E[:n_sub], W_U=w.W_U[:, :n_sub])
     T_sub, t_table = _timed(token_table, w_sub, TableOptions(options.table, options.position))
-    _, t_values = _timed(writer_values, w_sub, T_sub, units[0].writer[0])
-    _, t_keys = _timed(responder_keys, w_sub, T_sub, units[0].responder_layer)
+    first = units[0]
+    sub = SideFactors(w_sub, T_sub, offsets_rotation(w, options.rotary_offsets))
+    _, t_values = _timed(sub.values, first.writer[0])
+    _, t_fixed = _timed(side.fixed, sub, first.responder_layer)
     scale = V / n_sub
-    value_builds, key_builds = _factor_builds(units)
+    value_builds, fixed_builds = _factor_builds(units)
     _, t_fp = _timed(w.fingerprint)  # the scan file records it
 
-    # per pair: query factor; per responder layer: packed keys (on factors of the model's size)
+    # per pair: the side's written-token factor (its per-writer parts included, timed on the subset);
+    # per responder layer: the packed right factor (on factors of the model's size)
+    written, t_written = _timed(side.written, sub, first.writer, first.responder_layer)
+    factor = written(first.responder_heads[0])
     g = torch.Generator().manual_seed(0)
     A = torch.randn(V, dh, generator=g, dtype=torch.float64)
     C = torch.randn(dh, dh, generator=g, dtype=torch.float64)
@@ -149,11 +162,13 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     rows, rows_most = expected_rows(V, sampling, options.min_effect, options.k)
     looks = sampling.schedule(V)
     looks_used = max(1, sum(1 for n in looks if n <= rows))
-    if options.orientation == "row":  # only the evaluated rows of the query factor are built
+    written_left = (options.orientation == "row") == side.written_rows
+    if written_left and isinstance(factor, Product):  # only the evaluated rows of the written factor are built
         idx = np.arange(min(rows, V))
         t_left = _best_of(3, lambda: RowProduct(A, C)[idx])
-    else:
-        t_left = _best_of(3, query_side, A, C, A, options.orientation)
+    else:  # the whole written factor, built from the side's own factors
+        t_left = _best_of(3, lambda: sides.dense(factor)) * scale
+    t_left += t_written * scale / len(first.responder_heads)
     # the statistics of a unit's pairs are summarised together at each look
     demo = [np.random.default_rng(i).integers(0, V, rows).astype(np.float64) for i in range(H)]
     t_unit_summary = _best_of(2, summarise_many, demo, V, tuple(options.k), V, 0.05, len(looks))
@@ -166,8 +181,8 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     seconds = {
         "load": t_load,
         "table": t_table * scale,
-        "factors": (t_values * value_builds + t_keys * key_builds) * scale
-        + (t_prep * H * key_builds if options.orientation == "row" else t_prep * n_pairs * looks_used),
+        "factors": (t_values * value_builds + t_fixed * fixed_builds) * scale
+        + (t_prep * H * fixed_builds if written_left else t_prep * n_pairs * looks_used),
         "per_pair": n_pairs * t_left + len(units) * looks_used * t_unit_summary,
         "ranks": entries / rate,
         "write": t_fp,
@@ -185,11 +200,12 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     engine = "fused C kernel" if (options.engine != "torch" and options.device == "cpu" and kernel_available()) \
         else "plain torch"
     return Plan(str(getattr(w, "source", checkpoint)), V, dh, n_pairs, len(units), rows, rows_most, looks_used,
-                entries, rate, engine, options.precision, seconds, int(peak))
+                entries, rate, engine, options.precision, side.title, seconds, int(peak))
 
 
 def _factor_builds(units) -> tuple[int, int]:
-    """How often the scan builds writer values and responder keys (it keeps one layer of each)."""
+    """How often the scan builds writer values and the side's per-layer responder factor (it keeps
+    one layer of each)."""
     values = keys = 0
     last_v = last_k = None
     for u in units:

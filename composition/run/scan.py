@@ -17,9 +17,8 @@ import datetime as _dt
 import hashlib
 import json
 import os
-import re
 import time
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable
 
@@ -28,88 +27,17 @@ import numpy as np
 from .._version import __version__
 from ..extract import load_weights
 from ..errors import CompositionError
-from ..compose.factors import ORIENTATIONS, query_middles, responder_keys, writer_values
-from ..compose.factors import (QUERY_PARTS, SIDES, key_middles, query_part_side, responder_queries,
-                      responder_readouts, unembed_coefficients, unembed_directions, unembed_queries,
-                      value_middles, write_fraction)
+from ..options import ScanOptions, parse_heads, result_options  # noqa: F401  (parse_heads: public API)
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
-from ..score.ranks import DEVICES, PRECISIONS, RowProduct, check_device, prepare_right
+from .units import WorkUnit, compute_unit, scan_pairs, unit_factors, work_units  # noqa: F401
 from ..extract.rotary import offsets_rotation
-from ..score.sampling import DEFAULT_FIRST_ROWS, Sampling, evaluate_pairs
 from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, Scan, ScanStore, ScanWriteError,
                        empty_pairs, journal_path, load_scan, read_scan_file)
-from ..score.stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, labels
-from ..extract.tables import TABLES, TableOptions, token_table
+from ..score.stats import HIST_BINS, labels
 from ..extract.weights import Weights
 
 Head = tuple[int, int]
-
-
-@dataclass(frozen=True)
-class ScanOptions:
-    """Everything that changes a scan's numbers, plus the head selection."""
-
-    table: str = "attn0-mlp0"
-    position: int | str | None = None
-    orientation: str = "row"
-    k: tuple[int, ...] = DEFAULT_K
-    fdr: float = DEFAULT_FDR
-    min_effect: float = DEFAULT_MIN_EFFECT
-    writers: str | None = None  # e.g. "1,2.3": whole layers or layer.head labels
-    responders: str | None = None
-    block_rows: int = 256
-    rotary_offsets: tuple[int, int] | None = None  # (A, B): mean rotation over delta in [A, B]; None: 0 for rotary models
-    family: str | None = None  # reader override (not a result option: the weights fingerprint covers it)
-    layout: str | None = None  # layout file for an unknown family (likewise)
-    # how the ranks are computed (never changes a number: not in the fingerprint)
-    precision: str = "fp32"  # fp32 | bf16-checked
-    device: str = "cpu"  # cpu | cuda
-    engine: str = "auto"  # auto | kernel | torch
-    # which rows are evaluated (in the fingerprint when sampling)
-    rows: int | None = None  # uniform sample without replacement of this many rows
-    seed: int = 0
-    until_ci: float | None = None  # sequential looks until every share's interval is this narrow
-    first_rows: int = DEFAULT_FIRST_ROWS
-
-    def sampling(self) -> Sampling:
-        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
-    # which path and which part of the write (METHODS §3, §3b; in the fingerprint)
-    side: str = "query"  # query | key | value (METHODS §3, §3b)
-    query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
-
-    def validate(self) -> None:
-        if self.table not in TABLES:
-            raise CompositionError(f"--table {self.table!r} is not one of: {', '.join(TABLES)}.")
-        if self.orientation not in ORIENTATIONS:
-            raise CompositionError(f"--orientation {self.orientation!r} is not one of: {', '.join(ORIENTATIONS)}.")
-        if not self.k or any(int(k) < 1 for k in self.k):
-            raise CompositionError("--k needs one or more positive integers, e.g. 1,5,10.")
-        if not 0 < self.fdr < 1:
-            raise CompositionError("--fdr must lie strictly between 0 and 1.")
-        if not 0 <= self.min_effect < 0.5:
-            raise CompositionError("--min-effect must lie in [0, 0.5).")
-        if self.rotary_offsets is not None:
-            a, b = self.rotary_offsets
-            if not 0 <= int(a) <= int(b):
-                raise CompositionError(f"--rotary-offsets {a}:{b} must satisfy 0 <= A <= B.")
-        if self.precision not in PRECISIONS:
-            raise CompositionError(f"--precision {self.precision!r} is not one of: {', '.join(PRECISIONS)}.")
-        if self.device not in DEVICES:
-            raise CompositionError(f"--device {self.device!r} is not one of: {', '.join(DEVICES)}.")
-        check_device(self.device)
-        self.sampling().validate()
-        self._validate_side()
-
-    def _validate_side(self) -> None:
-        if self.side not in SIDES:
-            raise CompositionError(f"--side {self.side!r} is not one of: {', '.join(SIDES)}.")
-        if self.query_part not in QUERY_PARTS:
-            raise CompositionError(f"--query-part {self.query_part!r} is not one of: {', '.join(QUERY_PARTS)}.")
-        if self.query_part != "full" and self.side != "query":
-            raise CompositionError(f"--query-part {self.query_part} applies to --side query only, not --side {self.side}.")
-        if self.side == "value" and self.orientation != "row":
-            raise CompositionError("--side value ranks within rows only (fixed written token); use --orientation row.")
 
 
 @dataclass
@@ -117,60 +45,6 @@ class ScanSummary:
     path: Path
     pairs: int
     labelled: list[dict] = field(default_factory=list)
-
-
-def parse_heads(spec: str | None, n_layers: int, n_heads: int, option: str) -> list[Head]:
-    """``"1,2.3"`` -> every head of layer 1 and head 3 of layer 2; None -> every head."""
-    if spec is None or spec.strip() == "":
-        return [(l, h) for l in range(n_layers) for h in range(n_heads)]
-    heads: set[Head] = set()
-    for item in spec.split(","):
-        item = item.strip()
-        m = re.fullmatch(r"(\d+)(?:\.(\d+))?", item)
-        if not m:
-            raise CompositionError(f"{option} item {item!r} is neither a layer (4) nor a head label (4.3).")
-        layer = int(m.group(1))
-        if layer >= n_layers:
-            raise CompositionError(f"{option} names layer {layer}, but the model has layers 0-{n_layers - 1}.")
-        if m.group(2) is None:
-            heads.update((layer, h) for h in range(n_heads))
-        else:
-            head = int(m.group(2))
-            if head >= n_heads:
-                raise CompositionError(f"{option} names head {item}, but layers have heads 0-{n_heads - 1}.")
-            heads.add((layer, head))
-    return sorted(heads)
-
-
-def scan_pairs(w: Weights, options: ScanOptions) -> list[tuple[Head, Head]]:
-    """Every (writer, responder) of the selection with responder layer > writer layer."""
-    writers = parse_heads(options.writers, w.n_layers, w.n_heads, "--writers")
-    responders = parse_heads(options.responders, w.n_layers, w.n_heads, "--responders")
-    pairs = [(u, r) for u in writers for r in responders if r[0] > u[0]]
-    if not pairs:
-        raise CompositionError("the --writers/--responders selection leaves no pair with the responder in a later layer.")
-    return pairs
-
-
-def result_options(options: ScanOptions) -> dict:
-    """The options that change a scan's numbers (they enter the fingerprint)."""
-    d = asdict(options)
-    for key in ("writers", "responders", "block_rows", "family", "layout", "precision", "device", "engine"):
-        d.pop(key)
-    r = options.rotary_offsets
-    d["rotary_offsets"] = "none" if r is None else f"{int(r[0])}:{int(r[1])}"
-    if not options.sampling().sampled:  # exact scans keep the fingerprint they always had
-        for key in ("rows", "seed", "until_ci", "first_rows"):
-            d.pop(key)
-    else:
-        d["row_order"] = "numpy.random.default_rng(seed).permutation(V)"
-        if options.until_ci is None:
-            d.pop("first_rows")
-    d["k"] = [int(k) for k in options.k]
-    d["position"] = "none" if options.position is None else str(options.position)
-    if options.query_part == "full":  # the default keeps the options (and fingerprint) of scans made before it
-        d.pop("query_part")
-    return d
 
 
 def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, options: ScanOptions = ScanOptions(),
@@ -264,12 +138,6 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
         _label_all(store.arrays, options)
         store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]), finished=_now()))
     run.finish()
-
-
-def unit_factors(w: Weights, options: ScanOptions) -> "_FactorCache":
-    """What ``compute_unit`` needs besides the unit: built the same way here and on workers."""
-    T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
-    return _FactorCache(w, T, offsets_rotation(w, options.rotary_offsets))
 
 
 def _open_store(out: Path, attrs: dict, arrays: dict, overwrite: bool) -> ScanStore:
@@ -429,165 +297,6 @@ class _Run:
         self.progress(ScanProgress(kind, self.units_done, len(self.units), self.units_before, self.pairs_done,
                                    self.pairs_before, self.n_pairs, self.entries, time.monotonic() - self.start,
                                    message))
-
-
-@dataclass(frozen=True)
-class WorkUnit:
-    """One writer head against the selected heads of one responder layer."""
-
-    writer: Head
-    responder_layer: int
-    responder_heads: tuple[int, ...]
-
-
-def work_units(pairs: list[tuple[Head, Head]]) -> list[WorkUnit]:
-    """Group pairs into work units, ordered (writer layer, responder layer, writer head) so
-    that consecutive units share their writer values and responder keys."""
-    grouped: dict[tuple[Head, int], list[int]] = {}
-    for u, r in pairs:
-        grouped.setdefault((u, r[0]), []).append(r[1])
-    order = sorted(grouped, key=lambda key: (key[0][0], key[1], key[0][1]))
-    return [WorkUnit(u, lR, tuple(sorted(grouped[(u, lR)]))) for u, lR in order]
-
-
-class _FactorCache:
-    """Writer values and responder keys, built once per layer and kept for the next unit."""
-
-    def __init__(self, w: Weights, table, rotation=None):
-        self.w, self.table, self.rotation = w, table, rotation  # rotation [dh, dh] or None
-        self._values: tuple[int, object] | None = None
-        self._keys: tuple[int, object] | None = None
-
-    def values(self, layer: int):  # -> [H, V, dh]
-        if self._values is None or self._values[0] != layer:
-            self._values = (layer, writer_values(self.w, self.table, layer))
-        return self._values[1]
-
-    def keys(self, layer: int):  # -> [H, V, dh]
-        if self._keys is None or self._keys[0] != layer:
-            self._keys = (layer, responder_keys(self.w, self.table, layer))
-        return self._keys[1]
-
-    # --- other sides and query parts (METHODS §3b): built only when a scan needs them
-    def _held(self, name: str, key, build):
-        """One factor per name, kept until its key (a layer, or a writer head) changes."""
-        store = self.__dict__.setdefault("_side_held", {})
-        if name not in store or store[name][0] != key:
-            store[name] = (key, build())
-        return store[name][1]
-
-    def queries(self, layer: int):  # -> [H, V, dh]  full token-table queries (key side)
-        return self._held("_queries", layer, lambda: responder_queries(self.w, self.table, layer))
-
-    def readouts(self, layer: int):  # -> [H, V, dh]  (W_O Lin(N_f) W_U)^T (value side)
-        return self._held("_readouts", layer, lambda: responder_readouts(self.w, layer))
-
-    def directions(self, writer_layer: int):  # -> [V, d]  unit effective unembedding directions
-        return self._held("_directions", writer_layer, lambda: unembed_directions(self.w, writer_layer))
-
-    def unembed_queries(self, writer_layer: int, layer: int):  # -> [H, V, dh]
-        return self._held("_unembed_queries", (writer_layer, layer), lambda: unembed_queries(
-            self.w, self.directions(writer_layer), writer_layer, layer, rotation=self.rotation))
-
-    def alpha(self, writer: Head):  # -> [V]  o_U(t) . u_t
-        def build():
-            (lU, hU) = writer
-            return unembed_coefficients(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU], self.directions(lU))
-        return self._held("_alpha", writer, build)
-
-    def write_fraction(self, writer: Head, part: str) -> float:
-        """Fraction of the writer's squared write carried by ``part`` (1 for ``full``)."""
-        if part == "full":
-            return 1.0
-        fractions = self.__dict__.setdefault("_fractions", {})
-        if (writer, part) not in fractions:
-            (lU, hU) = writer
-            fractions[(writer, part)] = write_fraction(self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU],
-                                                       part, self.alpha(writer))
-        return fractions[(writer, part)]
-
-
-def compute_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions) -> dict:
-    """Statistics of every pair of one work unit: ``{(writer, responder): PairStats}``."""
-    w = factors.w
-    (lU, hU), lR = unit.writer, unit.responder_layer
-    A = factors.values(lU)[hU]  # [V, dh]
-    if options.side != "query" or options.query_part != "full":  # METHODS §3b: other factors, same kernel
-        return _side_unit(factors, unit, options, A)
-    K = factors.keys(lR)  # [H, V, dh]
-    middles = query_middles(w, lU, hU, lR, rotation=factors.rotation)  # [H, dh, dh]
-    ks = tuple(int(k) for k in options.k)
-    lefts, rights = [], []  # built when the ranks kernel reaches them, one pair at a time
-    for hR in unit.responder_heads:
-        if options.orientation == "row":  # left = A C (only the evaluated rows), right = K
-            lefts.append(RowProduct(A, middles[hR]))
-            rights.append(_prepared_keys(factors, lR, hR, options))
-        else:  # column: left = K, right = A C (METHODS §3, the transpose), built when reached
-            lefts.append(K[hR])  # [V, dh]
-            rights.append(lambda h=hR: A @ middles[h])  # [V, dh]
-    stats = evaluate_pairs(lefts, rights, w.vocab_size, ks, options.sampling(), options.min_effect,
-                           options.precision, options.device, options.engine, options.block_rows)
-    return {(unit.writer, (lR, hR)): st for hR, st in zip(unit.responder_heads, stats)}
-
-
-def _prepared_keys(factors: _FactorCache, layer: int, head: int, options: ScanOptions):
-    """Row orientation: the responder keys packed for the ranks kernel, kept for the layer
-    (every writer unit of that responder layer reuses them)."""
-    key = (layer, options.precision, options.device, options.engine)
-    cache = getattr(factors, "_prepared_keys", None)
-    if cache is None or cache[0] != key:
-        cache = (key, {})
-        factors._prepared_keys = cache
-    if head not in cache[1]:
-        cache[1][head] = prepare_right(factors.keys(layer)[head], options.precision, options.device, options.engine)
-    return cache[1][head]
-
-
-def _side_unit(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A) -> dict:
-    """``compute_unit`` for the key and value sides and the query parts: the same kernel on the
-    factors of METHODS §3b, each pair's write fraction stored beside its statistics."""
-    w = factors.w
-    lefts, rights = zip(*[_side_inputs(factors, unit, options, A, hR) for hR in unit.responder_heads])
-    stats = evaluate_pairs(list(lefts), list(rights), w.vocab_size, tuple(int(k) for k in options.k),
-                           options.sampling(), options.min_effect, options.precision, options.device,
-                           options.engine, options.block_rows)
-    fraction = factors.write_fraction(unit.writer, options.query_part)
-    return {(unit.writer, (unit.responder_layer, hR)): replace(st, write_fraction=fraction)
-            for hR, st in zip(unit.responder_heads, stats)}
-
-
-def _side_inputs(factors: _FactorCache, unit: WorkUnit, options: ScanOptions, A, hR: int):
-    """The kernel's (left, right) of one pair: a per-layer factor is packed once per layer, a per-pair
-    one is built when the kernel reaches it. # A [V, dh]; left, right [V, dh] (or lazy)"""
-    w = factors.w
-    (lU, hU), lR = unit.writer, unit.responder_layer
-    row, M = options.orientation == "row", factors.rotation  # M [dh, dh] or None: every score is q M k^T
-    if options.side == "key":  # rows: query tokens; columns: written tokens
-        middle = key_middles(w, lU, hU, lR, rotation=M)[hR]  # [dh, dh]
-        Q = factors.queries(lR)[hR]  # [V, dh]
-        if row:
-            return Q, lambda: A @ middle
-        return RowProduct(A, middle), _prepared_fixed(factors, "queries", lR, hR, lambda: Q, options)
-    if options.side == "value":  # row orientation only (validated)
-        return (RowProduct(A, value_middles(w, lU, hU, lR)[hR]),
-                _prepared_fixed(factors, "readouts", lR, hR, lambda: factors.readouts(lR)[hR], options))
-    middle = query_middles(w, lU, hU, lR, rotation=M)[hR]  # [dh, dh]
-    K = factors.keys(lR)[hR]  # [V, dh]
-    alpha, Uq = factors.alpha(unit.writer), factors.unembed_queries(lU, lR)[hR]  # [V], [V, dh]
-    part = lambda: query_part_side(A, middle, K, options.query_part, alpha, Uq)[0]  # noqa: E731  [V, dh]
-    return (part, _prepared_keys(factors, lR, hR, options)) if row else (K, part)
-
-
-def _prepared_fixed(factors: _FactorCache, name: str, layer: int, head: int, build, options: ScanOptions):
-    """A per-layer right factor other than the keys, packed for the ranks kernel once per layer."""
-    key = (name, layer, options.precision, options.device, options.engine)
-    store = factors.__dict__.setdefault("_side_prepared", {})
-    if store.get("key") != key:
-        store.clear()
-        store["key"] = key
-    if head not in store:
-        store[head] = prepare_right(build(), options.precision, options.device, options.engine)
-    return store[head]
 
 
 def _store(arrays, index, s) -> None:

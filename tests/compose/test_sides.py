@@ -15,6 +15,7 @@ import torch
 from click.testing import CliRunner
 
 from composition import CompositionError, load_weights
+from composition.compose import sides
 from composition.present.cli import main
 from composition.compose.factors import (key_middles, key_side, query_middles, query_part_side,
                                  responder_keys, responder_queries, responder_readouts, unembed_coefficients,
@@ -86,13 +87,15 @@ def small_tied(tmp_path_factory):
 
 
 def _factors(m: Small, writer, responder, side, part="full", orientation="row"):
-    """The analyzer's factor pair for one pair, built from the public factor functions."""
+    """The analyzer's factor pair for one pair, built from the public factor functions (the side
+    registry refuses what a side does not offer, as the command line does)."""
     (lU, hU), (lR, hR) = writer, responder
+    sides.get(side, part, orientation)
     A = writer_values(m.w, m.T, lU)[hU]  # [V, dh]
     if side == "key":
         return key_side(A, key_middles(m.w, lU, hU, lR)[hR], responder_queries(m.w, m.T, lR)[hR], orientation)
     if side == "value":
-        return value_side(A, value_middles(m.w, lU, hU, lR)[hR], responder_readouts(m.w, lR)[hR], orientation)
+        return value_side(A, value_middles(m.w, lU, hU, lR)[hR], responder_readouts(m.w, lR)[hR])
     C, K = query_middles(m.w, lU, hU, lR)[hR], responder_keys(m.w, m.T, lR)[hR]
     U = unembed_directions(m.w, lU)  # [V, d]
     alpha = unembed_coefficients(A, m.w.layers[lU].attn.W_O[hU], U)  # [V]

@@ -120,3 +120,52 @@ def test_existing_output_is_not_overwritten_without_the_flag(small_model, tmp_pa
     out.write_text("keep me")
     _assert_one_sentence(_run("scan", path, "--out", out, "--writers", "0", "--responders", "1"), "--overwrite")
     assert out.read_text() == "keep me"
+
+
+@pytest.mark.parametrize("args, option", [
+    (["--seed", "-1"], "--seed"),
+    (["--seed", "1" + "0" * 30], "--seed"),
+    (["--seed", "9" * 5000], "--seed"),  # beyond Python's digit limit for int()
+    (["--rows", "0"], "--rows"),
+    (["--rows", "1" + "0" * 40], "--rows"),
+    (["--k", "0"], "--k"),
+    (["--k", "1,x"], "--k"),
+    (["--k", "301"], "--k"),  # more than the 300 keys per row of the model
+    (["--fdr", "1"], "--fdr"),
+    (["--fdr", "nan"], "--fdr"),
+    (["--min-effect", "0.5"], "--min-effect"),
+    (["--min-effect", "-0.1"], "--min-effect"),
+    (["--until-ci", "1"], "--until-ci"),
+    (["--until-ci", "0"], "--until-ci"),
+    (["--rotary-offset", "-2"], "--rotary-offset"),
+    (["--rotary-offset", "10000001"], "--rotary-offset"),
+    (["--rotary-offsets", "0:100000"], "--rotary-offsets"),  # 100001 offsets in the average
+    (["--rotary-offsets", "5:2"], "--rotary-offsets"),
+    (["--position", "-3"], "--position"),
+    (["--side", "values"], "--side"),
+    (["--precision", "fp8"], "--precision"),
+    (["--writers", "1" * 40], "--writers"),
+])
+def test_option_bounds_are_one_sentence_and_nothing_is_written(small_model, tmp_path, args, option):
+    """Every option out of its bounds (docs: `composition scan --help`) ends in one sentence naming the
+    option, exit status 2, no scan file and no journal; the same options are refused by `plan`.
+    Common practice, no source"""
+    path, _, _ = small_model
+    out = tmp_path / "s.h5"
+    result = _run("scan", path, "--out", out, *args, "-q")
+    assert result.exit_code == 2, result.output
+    _assert_one_sentence(result, option)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["model"]
+    plan = _run("plan", path, *args, "--calibrate", "0.1")
+    assert plan.exit_code == 2 and option in plan.stderr and len(plan.stderr.strip().splitlines()) == 1
+
+
+def test_largest_accepted_rotary_span_and_seed_are_accepted_by_the_option_checks():
+    """Common practice, no source: the bounds are inclusive (10^5 offsets; seeds up to 2^63 - 1)."""
+    from composition import options
+
+    assert options.offsets(None, "0:99999") == (0, 99999)
+    assert options.offsets("10000000", None) == (10**7, 10**7)
+    assert options.seed(str(2**63 - 1)) == 2**63 - 1
+    assert options.ks("10,1,5,5") == (1, 5, 10)
+    options.ScanOptions(rows=5, seed=3, until_ci=0.5, rotary_offsets=(0, 99999)).validate()

@@ -20,8 +20,9 @@ import numpy as np
 
 from ...errors import CompositionError
 from ...interpret.heads import HEAD_LABEL_WORDS, KINDS, HeadData, load_heads
-from ...interpret.predict import (PREDICTION_WORDS, RESPONSE_WORDS, Candidate, compensation, pair_table, shortlist,
-                       shortlist_rows)
+from ...compose import sides
+from ...interpret.predict import (PREDICTION_WORDS, Candidate, pair_table, scan_compensation, shortlist,
+                       shortlist_rows, side_notes)
 from ...store.scanfile import CAUTION, Scan, load_scan
 from ...score.stats import LABEL_NOT_COMPUTED
 from . import figures as fg
@@ -83,7 +84,7 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
         raise CompositionError(f"cannot create the report directory {out} ({exc.strerror}).") from None
     try:
         candidates = shortlist(scan, heads)
-        comp = compensation(scan.label, heads.heads["label"])
+        comp = scan_compensation(scan, heads)  # "not computed" unless the scan's side feeds the prediction
         figs = _figures(scan, heads, comp, out / "figures")
         tables = _tables(scan, heads, candidates, comp, out / "tables")
         if mediation:
@@ -153,7 +154,7 @@ def _figures(scan: Scan, heads: HeadData, comp: dict, out: Path) -> list[Figure]
         f"Labelled pairs: Benjamini-Hochberg q \u2264 {a['fdr']} over all scanned pairs and "
         f"|mean percentile \u2212 0.5| \u2265 {a['min_effect']}.",
         fg.category_map(scan.label, scan_axes, out, "pair_labels", "Responder labels per pair",
-                        {1: "attention-raising", -1: "attention-lowering", 0: "neutral"}))
+                        {v: sides.for_scan(a).words[v] for v in (1, -1, 0)}))
     signs = np.vectorize(lambda u, q, r: "".join("+" if s > 0 else ("\u2212" if s < 0 else "0") for s in (u, q, r)))
     ann = np.where(np.isin(comp["prediction"], (-1, 1)),
                    signs(comp["s_writer"], comp["s_response"], comp["s_responder"]), "")
@@ -195,7 +196,7 @@ def _figures(scan: Scan, heads: HeadData, comp: dict, out: Path) -> list[Figure]
     labelled = np.argwhere(np.isin(scan.label, (-1, 1)))
     if labelled.size:
         order = sorted(map(tuple, labelled), key=lambda i: -abs(scan.mean_percentile[i] - 0.5))[:MAX_HISTOGRAMS]
-        titles = [f"{i[0]}.{i[1]} \u2192 {i[2]}.{i[3]}  ({RESPONSE_WORDS[int(scan.label[i])]})" for i in order]
+        titles = [f"{i[0]}.{i[1]} \u2192 {i[2]}.{i[3]}  ({sides.for_scan(scan.attrs).words[int(scan.label[i])]})" for i in order]
         add("pair_histograms", "histograms", "Percentile histograms of the labelled pairs",
             "Fraction of evaluated rows per percentile bin; the dashed line is the uniform null. "
             f"The {len(order)} labelled pairs with the largest effect.",
@@ -392,8 +393,8 @@ def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, 
 
     counts = [
         (int(done.sum()), "pairs scanned"),
-        (int((lab == 1).sum()), "attention-raising pairs"),
-        (int((lab == -1).sum()), "attention-lowering pairs"),
+        (int((lab == 1).sum()), f"{sides.for_scan(a).words.raising} pairs"),
+        (int((lab == -1).sum()), f"{sides.for_scan(a).words.lowering} pairs"),
         (int((hl != LABEL_NOT_COMPUTED).sum()), "heads profiled"),
         (int((hl == 1).sum()), "copying heads"),
         (int((hl == -1).sum()), "suppressing heads"),
@@ -438,7 +439,7 @@ def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, 
     for i in sorted(map(tuple, np.argwhere(np.isin(lab, (-1, 1)))),
                     key=lambda i: -abs(scan.mean_percentile[i] - 0.5))[:MAX_TABLE_ROWS]:
         prow.append([f'<span class="mono">{i[0]}.{i[1]}</span>', f'<span class="mono">{i[2]}.{i[3]}</span>',
-                     _chip(RESPONSE_WORDS[int(lab[i])]), _fmt(scan.mean_percentile[i]),
+                     _chip(sides.for_scan(a).words[int(lab[i])]), _fmt(scan.mean_percentile[i]),
                      _fmt(scan.top_share[i][0], 4), _fmt(scan.bottom_share[i][0], 4), _fmt_q(scan.q_value[i]),
                      str(int(scan.rows_evaluated[i]))])
     pairs_html = (_table(["writer", "responder", "label", "mean pct", f"top-{k0} share", f"bottom-{k0} share",
@@ -488,7 +489,8 @@ def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, 
     caution = (f'<div class="caution"><strong>Read these as predictions, not findings.</strong> {_e(CAUTION)} '
                "Rank statistics are blind to magnitude: a pair can rank its diagonal perfectly with a write "
                "too small to matter. Near-duplicate tokens create near-ties in real vocabularies; the midrank "
-               "rule counts ties as half, so they pull shares towards the null rather than inventing effects.</div>")
+               "rule counts ties as half, so they pull shares towards the null rather than inventing effects.</div>"
+               + "".join(f'<p class="caution">{_e(n)}</p>' for n in side_notes(scan)))
 
     return f"""<!DOCTYPE html>
 <html lang="en">

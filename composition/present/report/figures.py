@@ -24,6 +24,7 @@ CATEGORY_COLOURS = {
     "compensating": "#6a4c93", "reinforcing": "#d9a21b", "none": NULL_COLOUR,
     "not computed": "#ffffff",
 }
+SIGN_COLOURS = {1: CATEGORY_COLOURS["attention-raising"], -1: CATEGORY_COLOURS["attention-lowering"], 0: NULL_COLOUR}
 EMPTY_FACE = "#ffffff"
 HATCH_COLOUR = "#cfc8ba"
 GRID_COLOUR = "#3b3b3b"
@@ -224,7 +225,7 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
 
     grid = axes.grid(codes)  # [rows, cols]
     keys = list(categories)
-    colours = [CATEGORY_COLOURS[categories[k]] for k in keys]
+    colours = [CATEGORY_COLOURS.get(categories[k], SIGN_COLOURS.get(k, EMPTY_FACE)) for k in keys]  # any side's words
     index = np.full(grid.shape, np.nan)
     for i, k in enumerate(keys):
         index[grid == k] = i
