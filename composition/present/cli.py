@@ -176,6 +176,10 @@ def demo(directory, quiet):
     click.echo(f"report: {index}")
     scan_data, head_data = load_report_inputs(root / "demo-scan.h5")
     _echo(terminal.shortlist(make_shortlist(scan_data, head_data), scan_data))
+    from ..demo import beyond_single_heads
+
+    click.echo("")
+    _echo(beyond_single_heads(root, demo_model=model))
     click.echo(f"note: {CAUTION}")
 
 
@@ -363,3 +367,8 @@ def pair(checkpoint, writer, responder, tokens, top, scan_file, csv_file, figure
             raise CompositionError(f"cannot write {figure_file} ({exc.strerror}).") from None
         click.echo(f"wrote {figure_file}")
     click.echo(f"note: {CAUTION}")
+
+
+from .compare_command import compare  # noqa: E402  (its own module: the command is long)
+
+main.add_command(compare)
