@@ -235,14 +235,15 @@ def heatmaps(scan: Scan, heads: HeadData, comp: dict, words: SideWords, sampling
         share = (scan.top_share if which == "top" else scan.bottom_share)[..., j]
         e = np.where(done, share / (k / n), np.nan)
         low, high = scan.arrays[lo_name][..., j], scan.arrays[hi_name][..., j]
-        undecided = done & (low <= k / n) & (k / n <= high)
+        undecided = done & (low <= k / n) & (k / n <= high) & (low < high)  # exact: a point, drawn as it is
         n_grey = int(undecided.sum())
+        grey = (f"Grey: the share's 95 % interval contains the null {k}/n = {k / n:.3g}, so the cell is not told "
+                f"apart from chance ({n_grey:,} of {int(done.sum()):,} pairs; {sampling.short()})."
+                if sampling.sampled else "Exact scan: the intervals are points, so no cell is greyed.")
         maps.append(Heatmap(
             f"{which}_{k}_enrichment", f"{which.capitalize()}-{k} enrichment",
             f"How much more often than chance the written token is among the {k} {word}-scoring keys of its "
-            f"own row: the {which}-{k} share divided by its null value {k}/n, on a log scale. Grey: the share's "
-            f"95 % interval contains the null {k}/n = {k / n:.3g}, so the cell is not told apart from chance "
-            f"({n_grey:,} of {int(done.sum()):,} pairs; {sampling.short()}).",
+            f"own row: the {which}-{k} share divided by its null value {k}/n, on a log scale. {grey}",
             e, scan_axes, fg.colour_scale(np.where(undecided, np.nan, e), 1.0,
                                           f"{which}-{k} share \u00f7 null {k}/n (log scale)", log2=True,
                                           min_half_width=1.0),

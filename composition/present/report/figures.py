@@ -143,6 +143,10 @@ def colour_scale(values: np.ndarray, centre: float, unit: str, log2: bool = Fals
     lo, hi = c - hw, c + hw
     if bounds is not None and not log2:
         lo, hi = max(lo, bounds[0]), min(hi, bounds[1])
+        span = bounds[1] - bounds[0]
+        if lo <= bounds[0] + 0.05 * span and hi >= bounds[1] - 0.05 * span:  # nearly the whole range: all of it
+            lo, hi, hw = bounds[0], bounds[1], max(c - bounds[0], bounds[1] - c)
+            how = "the statistic's whole range"
     clipped = int(((shown < lo) | (shown > hi))[~np.isnan(shown)].sum())
     return Scale(c, hw, lo, hi, log2, unit, clipped, how)
 
@@ -317,6 +321,9 @@ def _quantise(path: Path) -> None:
 
     with Image.open(path) as im:
         small = im.convert("RGB").quantize(colors=256, method=Image.Quantize.FASTOCTREE, dither=Image.Dither.NONE)
+    palette = np.array(small.getpalette(), dtype=np.uint8).reshape(-1, 3)
+    palette[(palette >= 250).all(axis=1)] = 255  # the octree bins white with 250-254: keep the page's white white
+    small.putpalette(palette.ravel().tolist())
     small.save(path, optimize=True)
 
 
