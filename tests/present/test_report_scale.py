@@ -168,3 +168,44 @@ def test_144_head_report_in_headless_chromium(big, tmp_path):
     assert notice and "2,000 of 4,096 rows" in notice.group(1) and "seed 7" in notice.group(1)
     loaded = re.search(r'data-heatmaps-loaded="(\d+)"', dom).group(1)
     assert loaded == re.search(r'data-heatmaps-total="(\d+)"', dom).group(1) == "11"
+    zooms = sum(int(z) for _, _, z in figures)
+    assert int(re.search(r'data-hover-images="(\d+)"', dom).group(1)) == 11 + zooms
+
+
+_PROBE = """<script>
+window.addEventListener('load', function () {
+  var out = [];
+  document.querySelectorAll('details.zooms').forEach(function (d) { d.open = true; });
+  [['#fig-mean_percentile > img', 1, 10, 2, 3], ['#fig-q_composition .zoom:last-child img', 9, 11, 11, 10]]
+  .forEach(function (t) {
+    var img = document.querySelector(t[0]), b = img.getBoundingClientRect(), H = 12;
+    var e = img.dataset.extent.split(',').map(Number), wl = img.dataset.wl.split(',').map(Number),
+        rl = img.dataset.rl.split(',').map(Number);
+    var row = wl.indexOf(t[1]) * H + t[2], col = rl.indexOf(t[3]) * H + t[4];
+    var x = b.left + (e[0] + (col + 0.5) / (rl.length * H) * (e[2] - e[0])) * b.width;
+    var y = b.top + (e[1] + (row + 0.5) / (wl.length * H) * (e[3] - e[1])) * b.height;
+    img.dispatchEvent(new MouseEvent('mousemove', {bubbles: true, clientX: x, clientY: y}));
+    out.push(document.getElementById('tip').textContent);
+  });
+  document.documentElement.setAttribute('data-probe', out.join(' | '));
+});
+</script>"""
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (Debian: apt-get install -y chromium)")
+def test_static_heatmap_images_hover_the_cell_under_the_pointer(big, tmp_path):
+    """A pointer at the centre of cell 1.10 -> 2.3 of the mean-percentile overview, and of cell
+    9.11 -> 11.10 of a zoomed Q-composition block, shows that pair's hover text: the PNG's
+    recorded data area maps pointer positions to cells in a real browser.
+
+    Reference library: Chromium (Debian package), --dump-dom; DOM MouseEvent.
+    """
+    _, report = big
+    probe = report / "probe.html"
+    probe.write_text((report / "index.html").read_text().replace("</body>", _PROBE + "</body>"))
+    dom, console = _chromium(probe.as_uri(), "--dump-dom", "--window-size=1400,2000", tmp=tmp_path)
+    assert console == []
+    text = re.search(r'data-probe="([^"]*)"', dom).group(1)
+    first, second = text.split(" | ")
+    assert first.startswith("writer 1.10 \u2192 responder 2.3") and "Mean percentile" in first
+    assert second.startswith("writer 9.11 \u2192 responder 11.10") and "Q-composition" in second

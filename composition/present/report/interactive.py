@@ -218,6 +218,7 @@ _SCRIPT = r"""
     D.stats.forEach(function (st) { if (!st.cats && st.source === 'model') rows.push(esc(st.title) + ': ' + esc(valueText(st, D.values[st.key][p]))); });
     panel.innerHTML = rows.join('<br>') + (D.s[p] && D.hist[p] ? '<div>' + histogram(D.hist[p]) + '</div>' : '');
     panel.dataset.p = p;
+    headSel.value = D.r[p];
     headView(D.r[p], D.w[p]);
   }
   function chart(title, ps, other) {
@@ -250,6 +251,40 @@ _SCRIPT = r"""
     tip.style.left = Math.min(window.innerWidth - 430, ev.clientX + 14) + 'px'; tip.style.top = (ev.clientY + 14) + 'px';
   });
   views.addEventListener('click', function (ev) { var p = ev.target.dataset ? ev.target.dataset.p : undefined; if (p !== undefined) select(+p); });
+  // hover on the static heatmap images: the PNG's data area is known (data-extent), so a
+  // pointer position maps to a cell
+  var at = {}, LH = D.L * H;
+  for (var p = 0; p < P; p++) at[D.w[p] * LH + D.r[p]] = p;
+  document.addEventListener('DOMContentLoaded', function () {  // the figures come after this script
+  var hoverImgs = document.querySelectorAll('img[data-hover]');
+  hoverImgs.forEach(function (img) {
+    var ext = img.dataset.extent.split(',').map(Number), st = byKey[img.dataset.hover];
+    var wl = img.dataset.wl.split(',').map(Number), rl = img.dataset.rl.split(',').map(Number);
+    if (!st) return;
+    img.addEventListener('mousemove', function (ev) {
+      var b = img.getBoundingClientRect();
+      var fx = ((ev.clientX - b.left) / b.width - ext[0]) / (ext[2] - ext[0]);
+      var fy = ((ev.clientY - b.top) / b.height - ext[1]) / (ext[3] - ext[1]);
+      var col = Math.floor(fx * rl.length * H), row = Math.floor(fy * wl.length * H), p;
+      if (fx >= 0 && fx < 1 && fy >= 0 && fy < 1) {
+        var w = wl[Math.floor(row / H)] * H + row % H, r = rl[Math.floor(col / H)] * H + col % H;
+        p = at[w * LH + r];
+      }
+      if (p === undefined || D.values[st.key][p] === null) { tip.style.display = 'none'; img.style.cursor = ''; return; }
+      img.style.cursor = 'crosshair';
+      tip.innerHTML = hover(st, p); tip.style.display = 'block';
+      tip.style.left = Math.min(window.innerWidth - 430, ev.clientX + 14) + 'px'; tip.style.top = (ev.clientY + 14) + 'px';
+    });
+    img.addEventListener('mouseleave', function () { tip.style.display = 'none'; });
+    img.addEventListener('click', function (ev) {
+      if (tip.style.display !== 'block') return;
+      var m = /writer (\d+)\.(\d+) \u2192 responder (\d+)\.(\d+)/.exec(tip.textContent);
+      if (m) { select(at[(+m[1] * H + +m[2]) * LH + +m[3] * H + +m[4]]);
+               document.getElementById('explorer').scrollIntoView(); }
+    });
+  });
+  root.setAttribute('data-hover-images', hoverImgs.length);
+  });
   statSel.addEventListener('change', function () { draw(statSel.value); });
   headSel.addEventListener('change', function () { headView(+headSel.value, +headSel.value); });
   // self-check for the browser test: every drawable cell of every statistic has hover text

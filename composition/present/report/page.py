@@ -151,9 +151,15 @@ def _table(header: list[str], rows: list[list[str]], text_cols: int = 1, left_la
     return f"<table>{head}<tbody>{body}</tbody></table>{foot}"
 
 
-def _img(path: Path, alt: str) -> str:
+def _img(path: Path, alt: str, key: str = "", drawn=None) -> str:
+    """An inlined PNG; a heatmap's carries where its cells are, for the page's hover."""
     data = base64.b64encode(path.read_bytes()).decode("ascii")
-    return f'<img src="data:image/png;base64,{data}" alt="{_e(alt)}">'
+    hover = ""
+    if drawn is not None:
+        layers = lambda heads: ",".join(str(l) for l in dict.fromkeys(l for l, _ in heads))  # noqa: E731
+        hover = (f' data-hover="{_e(key)}" data-extent="{",".join(f"{x:.5f}" for x in drawn.extent)}"'
+                 f' data-wl="{layers(drawn.rows)}" data-rl="{layers(drawn.cols)}"')
+    return f'<img src="data:image/png;base64,{data}" alt="{_e(alt)}"{hover}>'
 
 
 def _figure_html(fig, out: Path) -> str:
@@ -165,12 +171,12 @@ def _figure_html(fig, out: Path) -> str:
         attrs += f' data-heads-labelled="{labelled}" data-zooms="{len(fig.zooms)}" data-key="{_e(fig.key)}"'
     zooms = ""
     if fig.zooms:
-        imgs = "".join(f'<div class="zoom" data-block="{_e(name)}">{_img(d.files["png"], f"{fig.title}: {name}")}'
+        imgs = "".join(f'<div class="zoom" data-block="{_e(name)}">{_img(d.files["png"], f"{fig.title}: {name}", fig.key, d)}'
                        f'<p class="tnote">{_e(name)} \u00b7 <a href="{_e(d.files["png"].relative_to(out).as_posix())}">'
                        f'PNG</a></p></div>' for name, d in fig.zooms)
         zooms = (f'<details class="zooms"><summary>{len(fig.zooms)} zoomed blocks, every head labelled '
                  f'layer.head</summary>{imgs}</details>')
-    return (f'<figure id="fig-{_e(fig.key)}" {attrs}>{_img(fig.files["png"], fig.title)}'
+    return (f'<figure id="fig-{_e(fig.key)}" {attrs}>{_img(fig.files["png"], fig.title, fig.key, fig.drawn)}'
             f'<figcaption><b>{_e(fig.title)}.</b> {_e(fig.caption)} {links}</figcaption>{zooms}</figure>')
 
 
