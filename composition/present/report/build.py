@@ -305,7 +305,8 @@ def _draw(m: Heatmap, out: Path) -> Figure:
              for b in m.axes.blocks(present)]
     parts = [m.caption]
     if m.scale is not None:
-        parts.append(f"Colour: {m.scale.range_text()}.")
+        text = m.scale.range_text()
+        parts.append(text[0].upper() + text[1:] + ".")
     if m.annotations is not None:
         texted = [overview.cell_text] + [d.cell_text for _, d in zooms]
         if all(texted):
