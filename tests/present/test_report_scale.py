@@ -28,7 +28,7 @@ L, H = 12, 12
 def big(tmp_path_factory):
     root = tmp_path_factory.mktemp("scale")
     scan = write_synthetic_scan(root / "scan.h5", L, H)
-    return scan, write_report(scan, root / "report").parent
+    return scan, write_report(scan, root / "report", svg=False).parent  # SVGs: tests/present/test_report.py
 
 
 def test_csv_tables_round_trip_every_head_id_in_pandas(big):

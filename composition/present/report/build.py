@@ -159,9 +159,10 @@ def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLi
 
 
 def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
-                 heads_path: str | os.PathLike | None = None, part_paths=()) -> Path:
+                 heads_path: str | os.PathLike | None = None, part_paths=(), svg: bool = True) -> Path:
     """Write the report of a scan into ``out_dir``; return the path of ``index.html``.
 
+    ``svg``: also write each overview figure as SVG (for papers; about a third of the build time).
     ``part_paths``: query-part scans (``unembed``, ``rest``) of the same model; the report then
     has a mediation table of the labelled pairs (``composition.interpret.predict.mediation_rows``).
     """
@@ -186,8 +187,8 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
         candidates = shortlist(scan, heads)
         comp = compensation(scan.label, heads.heads["label"])
         maps = heatmaps(scan, heads, comp, words, sampling)
-        figs = [_draw(m, out / "figures") for m in maps] + _other_figures(scan, heads, candidates, words,
-                                                                           out / "figures")
+        figs = ([_draw(m, out / "figures", svg) for m in maps]
+                + _other_figures(scan, heads, candidates, words, out / "figures", svg))
         tables = write_tables(scan, heads, candidates, comp, out / "tables", sampling.row())
         if mediation:
             tables["mediation"] = write_csv(out / "tables" / "mediation.csv", with_pair_ids(mediation))
@@ -291,7 +292,7 @@ def heatmaps(scan: Scan, heads: HeadData, comp: dict, words: SideWords, sampling
     return maps
 
 
-def _draw(m: Heatmap, out: Path) -> Figure:
+def _draw(m: Heatmap, out: Path, svg: bool = True) -> Figure:
     """The overview of a heatmap, and its zoomed blocks when the overview cannot label every head."""
     def one(axes: fg.Axes, stem: str, title: str, svg: bool) -> fg.Drawn:
         if m.categories is not None:
@@ -299,7 +300,7 @@ def _draw(m: Heatmap, out: Path) -> Figure:
                                    m.annotation_note, svg=svg)
         return fg.heatmap(m.values, axes, m.scale, out, stem, title, m.undecided, svg=svg)
 
-    overview = one(m.axes, m.key, m.title, True)
+    overview = one(m.axes, m.key, m.title, svg)
     present = (np.isin(m.values, list(m.categories)) if m.categories is not None else ~np.isnan(m.values))
     zooms = [(b.name(), one(b, f"zoom/{m.key}_{b.stem()}", f"{m.title}: {b.name()}", False))
              for b in m.axes.blocks(present)]
@@ -322,7 +323,8 @@ def _draw(m: Heatmap, out: Path) -> Figure:
     return Figure(m.key, "heatmap", m.title, " ".join(parts), overview.files, zooms, overview)
 
 
-def _other_figures(scan: Scan, heads: HeadData, candidates, words: SideWords, out: Path) -> list[Figure]:
+def _other_figures(scan: Scan, heads: HeadData, candidates, words: SideWords, out: Path,
+                   svg: bool = True) -> list[Figure]:
     figs = []
     hp = heads.heads
     figs.append(Figure(
@@ -330,7 +332,7 @@ def _other_figures(scan: Scan, heads: HeadData, candidates, words: SideWords, ou
         "Top: eigenvalue copying score of each head's OV circuit (1: pure copying, \u22121: pure suppression). "
         "Bottom: mean percentile of the OV token matrix's diagonal, whose label (bar colour) uses the "
         "same null and FDR rule as the pairs.",
-        fg.head_bars(hp["eigen_copying_score"], hp["mean_percentile"], hp["label"], out, "head_copying")))
+        fg.head_bars(hp["eigen_copying_score"], hp["mean_percentile"], hp["label"], out, "head_copying", svg)))
     views = []
     for c in candidates[:MAX_HEAD_VIEWS]:
         for role in ("responder", "writer"):
@@ -345,7 +347,7 @@ def _other_figures(scan: Scan, heads: HeadData, candidates, words: SideWords, ou
             "every responder (as writer), with 95 % intervals (zero width in an exact scan); vermillion "
             f"{words.labels[1]}, blue {words.labels[-1]}, grey neutral; the band marks |mean percentile \u2212 0.5| "
             "below the effect threshold. The explorer above draws the same view for any head.",
-            fg.head_views(views, out, "head_views", float(scan.attrs.get("min_effect", 0.05)))))
+            fg.head_views(views, out, "head_views", float(scan.attrs.get("min_effect", 0.05)), svg)))
     labelled = np.argwhere(np.isin(scan.label, (-1, 1)))
     if labelled.size:
         order = sorted(map(tuple, labelled), key=lambda i: -abs(scan.mean_percentile[i] - 0.5))[:MAX_HISTOGRAMS]
@@ -354,7 +356,7 @@ def _other_figures(scan: Scan, heads: HeadData, candidates, words: SideWords, ou
             "pair_histograms", "histograms", "Percentile histograms of the labelled pairs",
             "Fraction of evaluated rows per percentile bin; the dashed line is the uniform null. "
             f"The {len(order)} labelled pairs with the largest effect; the explorer shows any pair's histogram.",
-            fg.histograms([scan.histogram[i] for i in order], titles, out, "pair_histograms")))
+            fg.histograms([scan.histogram[i] for i in order], titles, out, "pair_histograms", svg=svg)))
     return figs
 
 

@@ -247,21 +247,15 @@ class _Layout:
                 (top + self.axes_h) / self.height)
 
 
-def _layout(axes: "Axes", n_rows: int, n_cols: int, title: str, right: float) -> _Layout:
+def _layout(n_rows: int, n_cols: int, title: str, right: float) -> _Layout:
+    """Margins for tick labels ``10.11`` or ``layer 10`` and the axis label (left, bottom), the
+    title (top) and the colour bar or legend (``right``), in inches."""
     cell = _cell_inches(n_rows, n_cols)
-    every_x = len(axes.responder_layers) * axes.n_heads <= LABEL_ALL_HEADS
-    every_y = len(axes.writer_layers) * axes.n_heads <= LABEL_ALL_HEADS
-    left = 0.95 if every_y else 0.95
-    bottom = 0.95 if every_x else 0.95
+    left = bottom = 0.95
     top = 0.45
     aw, ah = n_cols * cell, n_rows * cell
     width = max(left + aw + right, 0.2 + 0.092 * len(title), 4.8)
     return _Layout(width, bottom + ah + top, left, bottom, aw, ah)
-
-
-def _figure_size(n_rows: int, n_cols: int, extra_width: float = 1.6) -> tuple[float, float]:
-    cell = _cell_inches(n_rows, n_cols)
-    return max(4.8, n_cols * cell + extra_width + 1.2), max(3.6, n_rows * cell + 1.6)
 
 
 def _head_ticks(ax, axis: str, layers: tuple[int, ...], H: int) -> None:
@@ -327,10 +321,10 @@ def _quantise(path: Path) -> None:
     small.save(path, optimize=True)
 
 
-def _save(fig, out_dir: Path, stem: str) -> dict[str, Path]:
+def _save(fig, out_dir: Path, stem: str, svg: bool = True) -> dict[str, Path]:
     """Write a figure laid out by tight_layout as PNG (palette-quantised) and SVG."""
     paths = {}
-    for ext in ("png", "svg"):
+    for ext in ("png", "svg") if svg else ("png",):
         p = out_dir / f"{stem}.{ext}"
         fig.savefig(p, dpi=PNG_DPI if ext == "png" else None, facecolor="white")
         paths[ext] = p
@@ -366,7 +360,7 @@ def heatmap(values: np.ndarray, axes: Axes, scale: Scale, out_dir: Path, stem: s
 
     shown = scale.shown(axes.grid(values))  # [rows, cols]
     c, hw = scale.centre, scale.half_width
-    lay = _layout(axes, *shown.shape, title, right=1.75)
+    lay = _layout(*shown.shape, title, right=1.75)
     fig = plt.figure(figsize=(lay.width, lay.height))
     ax = fig.add_axes(lay.axes_rect())
     _empty_background(ax, *shown.shape)
@@ -430,7 +424,7 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
     for i, k in enumerate(keys):
         index[grid == k] = i
     cmap = ListedColormap(colours).with_extremes(bad=(0, 0, 0, 0))
-    lay = _layout(axes, *grid.shape, title, right=2.3)
+    lay = _layout(*grid.shape, title, right=2.3)
     fig = plt.figure(figsize=(lay.width, lay.height))
     ax = fig.add_axes(lay.axes_rect())
     _empty_background(ax, *grid.shape)
@@ -454,7 +448,7 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
 
 
 def head_bars(copying_score: np.ndarray, ov_mean_percentile: np.ndarray, ov_label: np.ndarray,
-              out_dir: Path, stem: str) -> dict[str, Path]:
+              out_dir: Path, stem: str, svg: bool = True) -> dict[str, Path]:
     """Per-head bars: the eigenvalue copying score and the OV diagonal's mean percentile.
 
     # copying_score [L, H], ov_mean_percentile [L, H], ov_label [L, H] (+1/-1/0)
@@ -492,10 +486,10 @@ def head_bars(copying_score: np.ndarray, ov_mean_percentile: np.ndarray, ov_labe
                        for w in shown],
               loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=len(shown), fontsize=7, frameon=False)
     fig.tight_layout()
-    return _save(fig, out_dir, stem)
+    return _save(fig, out_dir, stem, svg)
 
 
-def head_views(views: list[dict], out_dir: Path, stem: str, min_effect: float) -> dict[str, Path]:
+def head_views(views: list[dict], out_dir: Path, stem: str, min_effect: float, svg: bool = True) -> dict[str, Path]:
     """For each chosen head, its pairs' mean percentile with 95 % intervals, one panel per view.
 
     ``views``: dicts with ``title``, ``labels`` (other head of each pair), ``mean``, ``low``,
@@ -526,11 +520,11 @@ def head_views(views: list[dict], out_dir: Path, stem: str, min_effect: float) -
         ax.tick_params(labelsize=6)
         ax.spines[["top", "right"]].set_visible(False)
     fig.tight_layout()
-    return _save(fig, out_dir, stem)
+    return _save(fig, out_dir, stem, svg)
 
 
 def histograms(hists: list[np.ndarray], titles: list[str], out_dir: Path, stem: str,
-               suptitle: str = "Percentile of the diagonal, pair by pair") -> dict[str, Path]:
+               suptitle: str = "Percentile of the diagonal, pair by pair", svg: bool = True) -> dict[str, Path]:
     """Small multiples of percentile histograms. # hists: n x [bins] counts"""
     _, plt = _mpl()
 
@@ -544,7 +538,7 @@ def histograms(hists: list[np.ndarray], titles: list[str], out_dir: Path, stem: 
         _histogram_axes(ax, np.asarray(hist), title)
     fig.suptitle(suptitle, x=0.01, ha="left", fontsize=11, fontweight="bold")
     fig.tight_layout()
-    return _save(fig, out_dir, stem)
+    return _save(fig, out_dir, stem, svg)
 
 
 def _histogram_axes(ax, hist: np.ndarray, title: str) -> None:
