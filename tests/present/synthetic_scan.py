@@ -44,8 +44,10 @@ def write_synthetic_scan(path: Path, L: int = 12, H: int = 12, V: int = 4096, ro
         bottom[:, j] = rng.binomial(rows, p_bot) / rows
     arrays["done"][...] = done
     arrays["mean_percentile"][idx] = mean
-    arrays["mean_ci_low"][idx] = mean - half
-    arrays["mean_ci_high"][idx] = mean + half
+    mean = np.clip(mean, 0.0, 1.0)
+    arrays["mean_percentile"][idx] = mean
+    arrays["mean_ci_low"][idx] = np.clip(mean - half, 0.0, 1.0)
+    arrays["mean_ci_high"][idx] = np.clip(mean + half, 0.0, 1.0)
     arrays["top_share"][idx] = top
     arrays["bottom_share"][idx] = bottom
     for name, share in (("ci", top), ("bottom_ci", bottom)):  # Wilson-like width, invented
