@@ -33,6 +33,12 @@ CATEGORY_COLOURS = {
     "compensating": "#5b2c83", "reinforcing": "#e3a300", "none": "#e4e7eb",
     "not computed": "#ffffff",
 }
+RESPONSE_COLOURS = {1: HIGH_COLOURS[1], -1: LOW_COLOURS[1], 0: "#e4e7eb"}  # pair labels by code, whatever their words
+
+
+def category_colour(code: int, word: str) -> str:
+    """A category's colour: by its word (predictions, head labels), else by its response code."""
+    return CATEGORY_COLOURS.get(word) or RESPONSE_COLOURS.get(int(code), "#ffffff")
 ACCENT = "#0b7a75"  # the page's accent (links, rules)
 EMPTY_FACE = "#ffffff"
 HATCH_COLOUR = "#c3cad4"
@@ -419,7 +425,7 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
 
     grid = axes.grid(codes)  # [rows, cols]
     keys = list(categories)
-    colours = [CATEGORY_COLOURS[categories[k]] for k in keys]
+    colours = [category_colour(k, categories[k]) for k in keys]
     index = np.full(grid.shape, np.nan)
     for i, k in enumerate(keys):
         index[grid == k] = i
@@ -438,7 +444,8 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
     if annotations is not None:
         ann = axes.grid(annotations)
         cells = [(int(i), int(j)) for i, j in zip(*np.nonzero(ann != "")) if np.isfinite(index[i, j])]
-        dark = [categories[keys[int(index[i, j])]] in ("reinforcing", "neutral", "none") for i, j in cells]
+        dark = [categories[keys[int(index[i, j])]] in ("reinforcing", "neutral", "none") or keys[int(index[i, j])] == 0
+                for i, j in cells]
         wrote = _cell_text(ax, ann, cells, dark, _cell_inches(*grid.shape))
         if wrote:
             handles.append(Patch(facecolor="none", edgecolor="none", label=annotation_note))

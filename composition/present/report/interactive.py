@@ -68,7 +68,7 @@ def explorer_data(scan, heads, comp: dict, maps: list, words, sampling) -> dict:
         if m.categories is not None:
             codes = m.values[sel]
             data["values"][m.key] = [int(c) if int(c) in m.categories else None for c in codes.tolist()]
-            meta["cats"] = {str(k): [w, fg.CATEGORY_COLOURS[w]] for k, w in m.categories.items()}
+            meta["cats"] = {str(k): [w, fg.category_colour(k, w)] for k, w in m.categories.items()}
         else:
             s = m.scale
             data["values"][m.key] = _num(m.values[sel])

@@ -129,8 +129,9 @@ def _interval(x, lo, hi, digits: int = 3) -> str:
     return f"{_fmt(x, digits)} <span class=\"muted\">[{_fmt(lo, digits)}, {_fmt(hi, digits)}]</span>"
 
 
-def _chip(word: str) -> str:
-    cls = word.replace("attention-", "")
+def _chip(word: str, code: int | None = None) -> str:
+    """A coloured word; a pair label's colour comes from its code (+1 raising, -1 lowering), whatever the side's words."""
+    cls = {1: "raising", -1: "lowering", 0: "neutral"}.get(code, word.replace("attention-", ""))
     return f'<span class="chip {_e(cls)}">{_e(word)}</span>'
 
 
@@ -228,10 +229,11 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
         (str(int((hl != LABEL_NOT_COMPUTED).sum())), "heads profiled"),
         (str(int((hl == 1).sum())), "copying heads"),
         (str(int((hl == -1).sum())), "suppressing heads"),
-        (str(int((pred == -1).sum())), "compensating pairs"),
-        (str(int((pred == 1).sum())), "reinforcing pairs"),
         (str(len(candidates)), "shortlisted heads"),
     ]
+    if words.feeds_compensation:
+        counts[-1:-1] = [(str(int((pred == -1).sum())), "compensating pairs"),
+                         (str(int((pred == 1).sum())), "reinforcing pairs")]
     summary = "".join(f"<div><b>{c}</b><span>{_e(t)}</span></div>" for c, t in counts)
     samp_cls = "sampling sampled" if sampling.sampled else "sampling"
     sampling_html = (f'<div class="{samp_cls}" id="sampling-notice" data-sampled="{str(sampling.sampled).lower()}">'
@@ -284,7 +286,7 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
     labelled = sorted(map(tuple, np.argwhere(np.isin(lab, (-1, 1)))), key=lambda i: -abs(scan.mean_percentile[i] - 0.5))
     for i in labelled[:MAX_TABLE_ROWS]:
         prow.append([f'<span class="mono">{i[0]}.{i[1]}</span>', f'<span class="mono">{i[2]}.{i[3]}</span>',
-                     _chip(words.labels[int(lab[i])]),
+                     _chip(words.labels[int(lab[i])], int(lab[i])),
                      _interval(scan.mean_percentile[i], scan.mean_ci_low[i], scan.mean_ci_high[i]),
                      _interval(scan.top_share[i][-1], scan.ci_low[i][-1], scan.ci_high[i][-1], 4),
                      _interval(scan.bottom_share[i][-1], scan.bottom_ci_low[i][-1], scan.bottom_ci_high[i][-1], 4),
@@ -342,7 +344,12 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
                "Rank statistics are blind to magnitude: a pair can rank its diagonal perfectly with a write "
                "too small to matter. Near-duplicate tokens create near-ties in real vocabularies; the midrank "
                "rule counts ties as half, so they pull shares towards the null rather than inventing effects.</div>")
-    compensation_section = ("" if "compensation" not in by_key and not crow else f"""
+    if not words.feeds_compensation:
+        compensation_section = (f'<h2 id="compensation">Compensation predictions</h2><p class="muted">The labels of '
+                                f'a {_e(words.name)} scan do not feed the compensation prediction; see the query-side '
+                                'scan\'s report.</p>')
+    else:
+        compensation_section = f"""
 <h2 id="compensation">Compensation predictions</h2>
 <p class="muted">Three signs per pair: s_U, the writer's own effect on the written token's logit (+1 copying,
 &minus;1 suppressing); s_QK, the responder's response (+1 raising, &minus;1 lowering); s_R, the responder's own
@@ -350,7 +357,7 @@ write. A negative product predicts that the responder works against what the wri
 (self-repair when the writer is removed): <b>compensating</b>. A positive product: <b>reinforcing</b>.
 A neutral sign anywhere: no prediction.</p>
 {figs_of("compensation")}
-{comp_html}""")
+{comp_html}"""
 
     return f"""<!DOCTYPE html>
 <html lang="en">
