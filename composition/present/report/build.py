@@ -2,43 +2,144 @@
 
 Layout of the report directory::
 
-    index.html          the page; every figure inlined as a PNG data URI, no network access
-    figures/NAME.png    each figure as PNG (120 dpi) ...
-    figures/NAME.svg    ... and as SVG (text kept as text)
-    tables/*.csv        pairs, heads, model-space scores, shortlist, compensation predictions
+    index.html          the page: every figure inlined as a PNG data URI, the interactive
+                        view's data as inline JSON and its script inline; no network access
+    figures/NAME.png    each overview figure as PNG (120 dpi) ...
+    figures/NAME.svg    ... and as SVG (text kept as text), for papers
+    figures/zoom/*.png  zoomed layer blocks of the heatmaps too large to label every head
+    tables/*.csv        pairs, heads, model-space scores, shortlist, compensation, sampling
+
+Modules: ``build`` (this: what is drawn, with which scale and caption), ``figures``
+(matplotlib), ``tables`` (CSV), ``interactive`` (the inline explorer), ``page`` (HTML).
 """
 
 from __future__ import annotations
 
-import base64
-import html
+import json
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from ...errors import CompositionError
-from ...interpret.heads import HEAD_LABEL_WORDS, KINDS, HeadData, load_heads
+from ...interpret.heads import KINDS, HeadData, load_heads
 from ...compose import sides
-from ...interpret.predict import (PREDICTION_WORDS, Candidate, pair_table, scan_compensation, shortlist,
-                       shortlist_rows, side_notes)
-from ...store.scanfile import CAUTION, Scan, load_scan
-from ...score.stats import LABEL_NOT_COMPUTED
+from ...interpret.predict import scan_compensation, shortlist, side_notes
+from ...store.scanfile import Scan, load_scan
 from . import figures as fg
 from .csvfiles import write_csv
+from .tables import with_pair_ids, write_tables
 
 MAX_HISTOGRAMS = 12
-MAX_TABLE_ROWS = 60
+MAX_HEAD_VIEWS = 4
 
 
 @dataclass
 class Figure:
     key: str
-    kind: str  # "heatmap", "bars", "histograms"
+    kind: str  # "heatmap", "bars", "histograms", "head-views"
     title: str
     caption: str
     files: dict[str, Path]
+    zooms: list = field(default_factory=list)  # [(block name, Drawn)]
+    drawn: object = None  # fg.Drawn of a heatmap overview
+
+
+@dataclass
+class Heatmap:
+    """One statistic drawn writer x responder: the static figures and the interactive view share it."""
+
+    key: str
+    title: str
+    caption: str
+    values: np.ndarray  # [L, H, L, H]; NaN (or codes outside ``categories``): no value
+    axes: fg.Axes
+    scale: fg.Scale | None = None  # continuous statistics
+    categories: dict | None = None  # category maps
+    undecided: np.ndarray | None = None  # [L, H, L, H] bool: interval contains the null (drawn grey)
+    annotations: np.ndarray | None = None  # [L, H, L, H] str
+    annotation_note: str = ""
+    source: str = "scan"  # "scan": token space (scanned pairs); "model": model space (every pair)
+
+
+@dataclass(frozen=True)
+class SideWords:
+    """What the report calls a side's labels, whether they feed the compensation prediction, and
+    the notes every page showing them carries (the side's meaning, the prediction note, the readout)."""
+
+    name: str  # "query side", "key side", "query side, unembed part of the write"
+    labels: dict  # label code -> word (+1, -1, 0, -128)
+    feeds_compensation: bool
+    notes: tuple[str, ...] = ()
+
+
+def side_words(scan: Scan) -> SideWords:
+    """The one place the report looks up a side's words: the sides registry (composition.compose.sides)."""
+    side = sides.for_scan(scan.attrs)
+    labels = {code: side.words[code] for code in (1, -1, 0, -128)}
+    return SideWords(side.title, labels, side.feeds_prediction, tuple(side_notes(scan)))
+
+
+@dataclass(frozen=True)
+class SamplingInfo:
+    """Which rows the scan evaluated (from the scan's attributes and rows_evaluated)."""
+
+    sampled: bool
+    vocab: int
+    rows: int | None
+    seed: int | None
+    looks: tuple[int, ...]
+    until_ci: float | None
+    evaluated_min: int
+    evaluated_max: int
+
+    def sentence(self) -> str:
+        if not self.sampled:
+            return (f"Every one of the {self.vocab:,} rows was evaluated for every pair; "
+                    "the intervals have zero width.")
+        ev = (f"{self.evaluated_min:,}" if self.evaluated_min == self.evaluated_max
+              else f"{self.evaluated_min:,}\u2013{self.evaluated_max:,}")
+        looks = ", ".join(f"{n:,}" for n in self.looks)
+        how = (f"sequential looks at {looks} rows, stopping when every interval is narrower than {self.until_ci}"
+               if self.until_ci is not None else f"one look of {looks} rows")
+        return (f"{ev} of {self.vocab:,} rows evaluated per pair (a uniform sample without "
+                f"replacement, seed {self.seed}; {how}). Statistics carry sampling noise: read each value with "
+                "its 95 % interval; intervals and labels allow for the number of looks.")
+
+    def short(self) -> str:
+        if not self.sampled:
+            return f"exact: all {self.vocab:,} rows per pair"
+        ev = (f"{self.evaluated_min:,}" if self.evaluated_min == self.evaluated_max
+              else f"{self.evaluated_min:,}\u2013{self.evaluated_max:,}")
+        return f"sampled: {ev} of {self.vocab:,} rows per pair, seed {self.seed}, looks {'/'.join(map(str, self.looks))}"
+
+    def row(self) -> dict:
+        return {"sampled": self.sampled, "vocabulary": self.vocab, "rows": self.rows if self.rows else self.vocab,
+                "seed": self.seed if self.sampled else "", "looks": " ".join(map(str, self.looks)),
+                "until_ci": self.until_ci if self.until_ci is not None else "",
+                "rows_evaluated_min": self.evaluated_min, "rows_evaluated_max": self.evaluated_max}
+
+
+def sampling_info(scan: Scan) -> SamplingInfo:
+    from ...score.sampling import DEFAULT_FIRST_ROWS, Sampling
+
+    a = scan.attrs
+    V = int(a.get("keys_per_row", a.get("vocab_size", 0)))
+    try:
+        opts = json.loads(a.get("options", "{}"))
+    except (TypeError, ValueError):
+        opts = {}
+    rows, until = opts.get("rows"), opts.get("until_ci")
+    sampled = rows is not None or until is not None
+    ev = scan.rows_evaluated[scan.done]
+    lo, hi = (int(ev.min()), int(ev.max())) if ev.size else (0, 0)
+    if sampled:
+        plan = Sampling(rows, int(opts.get("seed", 0)), until, int(opts.get("first_rows") or DEFAULT_FIRST_ROWS))
+        looks = tuple(plan.schedule(V))
+    else:
+        looks = (V,)
+    return SamplingInfo(sampled, V, rows, int(opts.get("seed", 0)) if sampled else None, looks, until, lo, hi)
 
 
 def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLike | None = None
@@ -61,14 +162,15 @@ def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLi
 
 
 def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
-                 heads_path: str | os.PathLike | None = None, part_paths=()) -> Path:
+                 heads_path: str | os.PathLike | None = None, part_paths=(), svg: bool = True) -> Path:
     """Write the report of a scan into ``out_dir``; return the path of ``index.html``.
 
+    ``svg``: also write each overview figure as SVG (for papers; about a third of the build time).
     ``part_paths``: query-part scans (``unembed``, ``rest``) of the same model; the report then
     has a mediation table of the labelled pairs (``composition.interpret.predict.mediation_rows``).
     """
     from ...interpret.predict import mediation_rows
-    from ...store.scanfile import load_scan
+    from . import interactive, page
 
     scan, heads = load_report_inputs(scan_path, heads_path)
     parts = {}
@@ -78,47 +180,36 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
     mediation = mediation_rows(scan, parts) if parts else []
     out = Path(out_dir)
     try:
-        (out / "figures").mkdir(parents=True, exist_ok=True)
-        (out / "tables").mkdir(parents=True, exist_ok=True)
+        for sub in ("figures", "figures/zoom", "tables"):
+            (out / sub).mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise CompositionError(f"cannot create the report directory {out} ({exc.strerror}).") from None
     try:
+        words = side_words(scan)
+        sampling = sampling_info(scan)
         candidates = shortlist(scan, heads)
-        comp = scan_compensation(scan, heads)  # "not computed" unless the scan's side feeds the prediction
-        figs = _figures(scan, heads, comp, out / "figures")
-        tables = _tables(scan, heads, candidates, comp, out / "tables")
+        comp = scan_compensation(scan, heads)  # not computed unless the scan's side feeds the prediction
+        maps = heatmaps(scan, heads, comp, words, sampling)
+        figs = ([_draw(m, out / "figures", svg) for m in maps]
+                + _other_figures(scan, heads, candidates, words, out / "figures", svg))
+        tables = write_tables(scan, heads, candidates, comp, out / "tables", sampling.row())
         if mediation:
-            tables["mediation"] = write_csv(out / "tables" / "mediation.csv", mediation)
-        page = _page(scan, heads, candidates, comp, figs, tables, out, mediation)
+            tables["mediation"] = write_csv(out / "tables" / "mediation.csv", with_pair_ids(mediation))
+        explorer = interactive.section(scan, heads, comp, maps, words, sampling)
+        html = page.render(scan, heads, candidates, comp, figs, tables, out, words, sampling, explorer, mediation)
         index = out / "index.html"
-        index.write_text(page, encoding="utf-8")
+        index.write_text(html, encoding="utf-8")
     except OSError as exc:
         raise CompositionError(f"cannot write the report into {out} ({exc.strerror or exc}).") from None
     return index
 
 
 # ---------------------------------------------------------------------------
-# Figures
+# What is drawn
 # ---------------------------------------------------------------------------
 
-def smoothed_enrichment(share: np.ndarray, rows: np.ndarray, k: int, n: int) -> np.ndarray:
-    """``(count + 1/2) / (expected + 1/2)`` with ``count = share * rows``, ``expected = k rows / n``.
-
-    # share [...], rows [...] -> [...]; the half count keeps a zero count from looking like a
-    strong depletion when the null expects well under one row.
-    """
-    rows = rows.astype(np.float64)
-    with np.errstate(invalid="ignore"):
-        return (share * rows + 0.5) / (k * rows / n + 0.5)
-
-
-def _side_words(attrs: dict) -> str:
-    """``query side``, ``key side``, ``value side``; with the query part when it is not the full write."""
-    side, part = attrs.get("side", "query"), attrs.get("query_part", "full")
-    return f"{side} side" + ("" if part in (None, "full", "none") else f", {part} part of the write")
-
-
-def _figures(scan: Scan, heads: HeadData, comp: dict, out: Path) -> list[Figure]:
+def heatmaps(scan: Scan, heads: HeadData, comp: dict, words: SideWords, sampling: SamplingInfo) -> list[Heatmap]:
+    """Every writer x responder statistic of the report, with its scale and caption."""
     a = scan.attrs
     n = int(a["keys_per_row"])
     ks = [int(k) for k in scan.k]
@@ -130,464 +221,158 @@ def _figures(scan: Scan, heads: HeadData, comp: dict, out: Path) -> list[Figure]
     for lU in range(L):
         pair_mask[lU, :, lU + 1:, :] = True
     ms_axes = fg.Axes.from_mask(pair_mask)
-    figs: list[Figure] = []
-
-    def add(key, kind, title, caption, files):
-        figs.append(Figure(key, kind, title, caption, files))
+    raising, lowering = words.labels[1], words.labels[-1]
+    min_effect = float(a.get("min_effect", 0.05))
+    maps: list[Heatmap] = []
 
     mp = np.where(done, scan.mean_percentile, np.nan)
-    add("mean_percentile", "heatmap", "Mean percentile of the diagonal",
-        "Brick: writing a token makes the responder attend to that token more than to other tokens "
-        "(attention-raising); teal: less (attention-lowering); cream: what the null model expects (0.5).",
-        fg.heatmap(mp, scan_axes, out, "mean_percentile", f"Mean percentile of the diagonal ({_side_words(a)})",
-                   "mean percentile of the diagonal (1 = top, 0 = bottom)", 0.5, half_width=0.5))
-    for which, word in (("top", "highest"), ("bottom", "lowest")):
-        share = scan.top_share[..., j] if which == "top" else scan.bottom_share[..., j]
-        e = np.where(done, smoothed_enrichment(share, scan.rows_evaluated, k, n), np.nan)
-        add(f"{which}_{k}_enrichment", "heatmap", f"{which.capitalize()}-{k} enrichment",
-            f"How much more often than chance the written token is among the {k} {word}-scoring keys "
-            f"of its own row: the {which}-{k} share divided by its null value {k}/n, on a log scale, "
-            f"with half a count added to the observed and expected counts.",
-            fg.heatmap(e, scan_axes, out, f"{which}_{k}_enrichment", f"{which.capitalize()}-{k} enrichment",
-                       f"{which}-{k} share \u00f7 null {k}/n (log scale, \u00bd-count smoothed)", 1.0, log2=True))
-    add("pair_labels", "heatmap", "Pair labels",
+    maps.append(Heatmap(
+        "mean_percentile", f"Mean percentile of the diagonal ({words.name})",
+        f"Vermillion: writing a token makes the responder attend to that token more than to other tokens "
+        f"({raising}); blue: less ({lowering}); near-white: what the null model expects (0.5). The scale "
+        f"never spans less than \u00b1{2 * min_effect:g} (twice the label threshold), so effects below the "
+        "threshold stay pale.",
+        mp, scan_axes, fg.colour_scale(mp, 0.5, "mean percentile of the diagonal (1 = top, 0 = bottom)",
+                                       min_half_width=min(0.5, 2 * min_effect), bounds=(0.0, 1.0))))
+    for which, word, lo_name, hi_name in (("top", "highest", "ci_low", "ci_high"),
+                                          ("bottom", "lowest", "bottom_ci_low", "bottom_ci_high")):
+        share = (scan.top_share if which == "top" else scan.bottom_share)[..., j]
+        e = np.where(done, share / (k / n), np.nan)
+        low, high = scan.arrays[lo_name][..., j], scan.arrays[hi_name][..., j]
+        undecided = done & (low <= k / n) & (k / n <= high) & (low < high)  # exact: a point, drawn as it is
+        n_grey = int(undecided.sum())
+        grey = (f"Grey: the share's 95 % interval contains the null {k}/n = {k / n:.3g}, so the cell is not told "
+                f"apart from chance ({n_grey:,} of {int(done.sum()):,} pairs; {sampling.short()})."
+                if sampling.sampled else "Exact scan: the intervals are points, so no cell is greyed.")
+        maps.append(Heatmap(
+            f"{which}_{k}_enrichment", f"{which.capitalize()}-{k} enrichment",
+            f"How much more often than chance the written token is among the {k} {word}-scoring keys of its "
+            f"own row: the {which}-{k} share divided by its null value {k}/n, on a log scale. {grey}",
+            e, scan_axes, fg.colour_scale(np.where(undecided, np.nan, e), 1.0,
+                                          f"{which}-{k} share \u00f7 null {k}/n (log scale)", log2=True,
+                                          min_half_width=1.0),
+            undecided=undecided))
+    maps.append(Heatmap(
+        "pair_labels", "Pair labels",
         f"Labelled pairs: Benjamini-Hochberg q \u2264 {a['fdr']} over all scanned pairs and "
         f"|mean percentile \u2212 0.5| \u2265 {a['min_effect']}.",
-        fg.category_map(scan.label, scan_axes, out, "pair_labels", "Responder labels per pair",
-                        {v: sides.for_scan(a).words[v] for v in (1, -1, 0)}))
-    signs = np.vectorize(lambda u, q, r: "".join("+" if s > 0 else ("\u2212" if s < 0 else "0") for s in (u, q, r)))
-    ann = np.where(np.isin(comp["prediction"], (-1, 1)),
-                   signs(comp["s_writer"], comp["s_response"], comp["s_responder"]), "")
-    add("compensation", "heatmap", "Compensation map",
-        "Prediction from the three signs (writer's own write s_U, responder's response s_QK, responder's "
-        "write s_R; printed in the cell in that order): violet compensating (product < 0, predicts "
-        "self-repair), gold reinforcing (product > 0), cream none (a neutral sign).",
-        fg.category_map(comp["prediction"], scan_axes, out, "compensation", "Compensation predictions",
-                        {-1: "compensating", 1: "reinforcing", 0: "none"}, annotations=ann,
-                        annotation_note="cell text: signs s_U s_QK s_R"))
+        scan.label, scan_axes, categories={1: raising, -1: lowering, 0: "neutral"}))
+    if words.feeds_compensation:
+        signs = np.vectorize(lambda u, q, r: "".join("+" if s > 0 else ("\u2212" if s < 0 else "0")
+                                                     for s in (u, q, r)))
+        ann = np.where(np.isin(comp["prediction"], (-1, 1)),
+                       signs(comp["s_writer"], comp["s_response"], comp["s_responder"]), "")
+        maps.append(Heatmap(
+            "compensation", "Compensation predictions",
+            "Prediction from the three signs (writer's own write s_U, responder's response s_QK, responder's "
+            "write s_R): purple compensating (product < 0, predicts self-repair), amber reinforcing "
+            "(product > 0), light grey none (a neutral sign).",
+            comp["prediction"], scan_axes, categories={-1: "compensating", 1: "reinforcing", 0: "none"},
+            annotations=ann, annotation_note="cell text: signs s_U s_QK s_R"))
     ms = heads.model_space
     draws = heads.model_space_attrs["baseline_draws"]
     for kind in KINDS:
         mean, sd = heads.baseline(kind)
-        add(f"{kind}_composition", "heatmap", f"{kind.upper()}-composition score",
-            f"Model-space {kind.upper()}-composition score of every pair; cream is the mean score of Gaussian "
+        v = ms[f"{kind}_composition"]
+        maps.append(Heatmap(
+            f"{kind}_composition", f"{kind.upper()}-composition score (model space)",
+            f"Model-space {kind.upper()}-composition score of every pair; near-white is the mean score of Gaussian "
             f"factors of the same shapes ({mean:.4f} \u00b1 {sd:.4f} sd over {draws} draws).",
-            fg.heatmap(ms[f"{kind}_composition"], ms_axes, out, f"{kind}_composition",
-                       f"{kind.upper()}-composition score (model space)",
-                       f"{kind.upper()}-composition score (dimensionless); null: Gaussian baseline", mean,
-                       bounds=(0.0, 1.0)))
+            v, ms_axes, fg.colour_scale(v, mean, f"{kind.upper()}-composition score; null: Gaussian baseline",
+                                        min_half_width=3 * sd, bounds=(0.0, 1.0)), source="model"))
     for kind, side in (("q", "query"), ("k", "key"), ("v", "value")):
         rm = ms[f"kernel_random_mean_{kind}"]
         with np.errstate(invalid="ignore", divide="ignore"):
             ratio = ms[f"projection_kernel_{kind}"] / rm
         const = np.unique(rm[np.isfinite(rm)])
         note = f" (ab/d = {const[0]:.3g} for every pair)" if const.size == 1 else ""
-        add(f"projection_kernel_{kind}", "heatmap", f"Projection kernel, {side} side",
-            f"Sum of squared cosines of the principal angles between the writer's write subspace and "
-            f"the responder's {side} read subspace, divided by its mean ab/d for random subspaces{note}.",
-            fg.heatmap(ratio, ms_axes, out, f"projection_kernel_{kind}", f"Projection kernel, {side} side",
-                       "projection kernel \u00f7 random mean ab/d (log scale)", 1.0, log2=True))
+        maps.append(Heatmap(
+            f"projection_kernel_{kind}", f"Projection kernel, {side} side",
+            f"Sum of squared cosines of the principal angles between the writer's write subspace and the "
+            f"responder's {side} read subspace, divided by its mean ab/d for random subspaces{note}.",
+            ratio, ms_axes, fg.colour_scale(ratio, 1.0, "projection kernel \u00f7 random mean ab/d (log scale)",
+                                            log2=True, min_half_width=1.0), source="model"))
+    return maps
+
+
+def _draw(m: Heatmap, out: Path, svg: bool = True) -> Figure:
+    """The overview of a heatmap, and its zoomed blocks when the overview cannot label every head."""
+    def one(axes: fg.Axes, stem: str, title: str, svg: bool) -> fg.Drawn:
+        if m.categories is not None:
+            return fg.category_map(m.values, axes, out, stem, title, m.categories, m.annotations,
+                                   m.annotation_note, svg=svg)
+        return fg.heatmap(m.values, axes, m.scale, out, stem, title, m.undecided, svg=svg)
+
+    overview = one(m.axes, m.key, m.title, svg)
+    present = (np.isin(m.values, list(m.categories)) if m.categories is not None else ~np.isnan(m.values))
+    zooms = [(b.name(), one(b, f"zoom/{m.key}_{b.stem()}", f"{m.title}: {b.name()}", False))
+             for b in m.axes.blocks(present)]
+    parts = [m.caption]
+    if m.scale is not None:
+        text = m.scale.range_text()
+        parts.append(text[0].upper() + text[1:] + ".")
+    if m.annotations is not None:
+        texted = [overview.cell_text] + [d.cell_text for _, d in zooms]
+        if all(texted):
+            parts.append("Cell text: the three signs s_U s_QK s_R of each predicting pair.")
+        elif any(texted):
+            parts.append("The three signs s_U s_QK s_R are printed in the cells of the zoomed blocks only "
+                         "(the overview's cells are too small); hover in the explorer for any cell.")
+        else:
+            parts.append("The cells are too small for text at this size: the signs are in compensation.csv, "
+                         "the table below and the explorer's hover.")
+    parts.append("Every head is labelled layer.head." if overview.heads_labelled else
+                 f"The overview labels layers; the {len(zooms)} zoomed blocks below label every head.")
+    return Figure(m.key, "heatmap", m.title, " ".join(parts), overview.files, zooms, overview)
+
+
+def _other_figures(scan: Scan, heads: HeadData, candidates, words: SideWords, out: Path,
+                   svg: bool = True) -> list[Figure]:
+    figs = []
     hp = heads.heads
-    add("head_copying", "bars", "Per-head copying",
+    figs.append(Figure(
+        "head_copying", "bars", "Per-head copying",
         "Top: eigenvalue copying score of each head's OV circuit (1: pure copying, \u22121: pure suppression). "
         "Bottom: mean percentile of the OV token matrix's diagonal, whose label (bar colour) uses the "
         "same null and FDR rule as the pairs.",
-        fg.head_bars(hp["eigen_copying_score"], hp["mean_percentile"], hp["label"], out, "head_copying"))
+        fg.head_bars(hp["eigen_copying_score"], hp["mean_percentile"], hp["label"], out, "head_copying", svg)))
+    views = []
+    for c in candidates[:MAX_HEAD_VIEWS]:
+        for role in ("responder", "writer"):
+            v = head_view(scan, c.head, role)
+            if v["labels"]:
+                v["title"] = f"{c.label} ({c.kind}) as {role}: mean percentile against every {v['other']}"
+                views.append(v)
+    if views:
+        figs.append(Figure(
+            "head_views", "head-views", "Responder and writer views of the shortlisted heads",
+            "Each shortlisted head's mean percentile against every writer it was scanned with (as responder) and "
+            "every responder (as writer), with 95 % intervals (zero width in an exact scan); vermillion "
+            f"{words.labels[1]}, blue {words.labels[-1]}, grey neutral; the band marks |mean percentile \u2212 0.5| "
+            "below the effect threshold. The explorer above draws the same view for any head.",
+            fg.head_views(views, out, "head_views", float(scan.attrs.get("min_effect", 0.05)), svg)))
     labelled = np.argwhere(np.isin(scan.label, (-1, 1)))
     if labelled.size:
         order = sorted(map(tuple, labelled), key=lambda i: -abs(scan.mean_percentile[i] - 0.5))[:MAX_HISTOGRAMS]
-        titles = [f"{i[0]}.{i[1]} \u2192 {i[2]}.{i[3]}  ({sides.for_scan(scan.attrs).words[int(scan.label[i])]})" for i in order]
-        add("pair_histograms", "histograms", "Percentile histograms of the labelled pairs",
+        titles = [f"{i[0]}.{i[1]} \u2192 {i[2]}.{i[3]}  ({words.labels[int(scan.label[i])]})" for i in order]
+        figs.append(Figure(
+            "pair_histograms", "histograms", "Percentile histograms of the labelled pairs",
             "Fraction of evaluated rows per percentile bin; the dashed line is the uniform null. "
-            f"The {len(order)} labelled pairs with the largest effect.",
-            fg.histograms([scan.histogram[i] for i in order], titles, out, "pair_histograms"))
+            f"The {len(order)} labelled pairs with the largest effect; the explorer shows any pair's histogram.",
+            fg.histograms([scan.histogram[i] for i in order], titles, out, "pair_histograms", svg=svg)))
     return figs
 
 
-# ---------------------------------------------------------------------------
-# CSV tables
-# ---------------------------------------------------------------------------
-
-def _tables(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, out: Path) -> dict[str, Path]:
-    tables = {}
-    pt = pair_table(scan, heads)
-    tables["pairs"] = write_csv(out / "pairs.csv", pt)
-    tables["heads"] = write_csv(out / "heads.csv", heads.table())
-    ms = heads.model_space
-    idx = np.argwhere(np.isfinite(ms["q_composition"]))  # [P, 4]
-    sel = tuple(idx.T)
-    mst = {"writer": np.array([f"{a}.{b}" for a, b in idx[:, :2]]),
-           "responder": np.array([f"{a}.{b}" for a, b in idx[:, 2:]])}
-    for name in ("q_composition", "k_composition", "v_composition", "projection_kernel_q", "projection_kernel_k",
-                 "projection_kernel_v", "kernel_random_mean_q", "kernel_random_mean_k", "kernel_random_mean_v"):
-        mst[name] = ms[name][sel]
-    tables["model_space"] = write_csv(out / "model_space.csv", mst)
-    rows = shortlist_rows(candidates)
-    header = ["rank", "kind", "head", "head_ov", "ov_mean_percentile", "ov_q_value", "copying_score", "writer",
-              "mean_percentile"] + [c for c in (rows[0] if rows else {}) if c.startswith(("top_share", "bottom_share"))] + [
-        "q_value", "writer_ov", "prediction", "q_composition", "q_composition_z", "projection_kernel_q",
-        "kernel_random_mean_q"]
-    tables["shortlist"] = write_csv(out / "shortlist.csv", rows, header)
-    keep = np.isin(pt["prediction"], (-1, 1))
-    ct = {name: pt[name][keep] for name in ("writer", "responder", "s_writer", "s_response", "s_responder",
-                                             "prediction_word", "mean_percentile", "q_value", "q_composition")}
-    tables["compensation"] = write_csv(out / "compensation.csv", ct)
-    return tables
-
-
-# ---------------------------------------------------------------------------
-# HTML
-# ---------------------------------------------------------------------------
-
-_CSS = """
-:root { --ink:#222; --muted:#5f5a52; --rule:#d9d3c7; --paper:#fbfaf7; --card:#ffffff;
-        --brick:#b9582a; --teal:#2f7287; --cream:#f1ede4; --violet:#6a4c93; --gold:#d9a21b; }
-* { box-sizing: border-box; }
-body { margin: 0; background: var(--paper); color: var(--ink);
-       font: 15px/1.5 "DejaVu Sans", "Segoe UI", Helvetica, Arial, sans-serif; }
-header { background: #2b2925; color: #f4f1ea; padding: 22px 32px 18px; }
-header h1 { margin: 0 0 4px; font-size: 22px; font-weight: 600; letter-spacing: .2px; }
-header p { margin: 0; color: #cfc8ba; font-size: 13px; }
-main { max-width: 1180px; margin: 0 auto; padding: 8px 28px 60px; }
-nav { margin: 14px 0 8px; font-size: 13px; }
-nav a { margin-right: 14px; color: var(--teal); }
-h2 { font-size: 18px; margin: 34px 0 8px; padding-bottom: 4px; border-bottom: 2px solid var(--rule); }
-h3 { font-size: 15px; margin: 18px 0 6px; }
-.caution { background: #fff4e5; border-left: 5px solid var(--brick); padding: 10px 16px; margin: 16px 0; }
-.caution strong { color: #7a2f10; }
-.summary { display: flex; flex-wrap: wrap; gap: 10px; margin: 12px 0; }
-.summary div { background: var(--card); border: 1px solid var(--rule); border-radius: 6px; padding: 8px 14px; min-width: 150px; }
-.summary b { display: block; font-size: 20px; }
-.summary span { color: var(--muted); font-size: 12px; }
-figure { background: var(--card); border: 1px solid var(--rule); border-radius: 6px; margin: 16px 0; padding: 12px 14px; }
-figure img { display: block; max-width: 100%; height: auto; margin: 0 auto; }
-figcaption { color: var(--muted); font-size: 13px; margin-top: 8px; }
-figcaption a { color: var(--teal); }
-figure.missing::after { content: "This figure could not be displayed: its image is missing or broken."; color: #a00; }
-table { border-collapse: collapse; margin: 8px 0 4px; font-size: 13px; background: var(--card); }
-th, td { border: 1px solid var(--rule); padding: 3px 8px; text-align: right; vertical-align: top; }
-th { background: #efebe2; font-weight: 600; }
-td.t, th.t { text-align: left; }
-tbody tr:nth-child(even) { background: #faf8f3; }
-.chip { display: inline-block; padding: 0 6px; border-radius: 3px; font-size: 12px; color: #fff; }
-.chip.raising, .chip.copying { background: var(--brick); }
-.chip.lowering, .chip.suppressing { background: var(--teal); }
-.chip.compensating { background: var(--violet); }
-.chip.reinforcing { background: var(--gold); color: #222; }
-.chip.not { background: #fff; color: #777; border: 1px dashed var(--rule); }
-.chip.neutral, .chip.none { background: var(--cream); color: #444; border: 1px solid var(--rule); }
-code, .mono { font-family: "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: 12.5px; }
-details { margin: 8px 0; } summary { cursor: pointer; color: var(--teal); }
-dl.defs dt { font-weight: 600; margin-top: 10px; }
-dl.defs dd { margin: 2px 0 0 18px; }
-.muted { color: var(--muted); font-size: 13px; }
-.files a { margin-right: 12px; }
-"""
-
-_SCRIPT = """
-window.addEventListener('load', function () {
-  var figures = document.querySelectorAll('figure[data-kind]');
-  var loaded = 0, heatmaps = 0, heatmapsLoaded = 0;
-  figures.forEach(function (fig) {
-    var img = fig.querySelector('img');
-    var ok = img && img.complete && img.naturalWidth > 0;
-    if (ok) { loaded += 1; } else { fig.classList.add('missing'); }
-    if (fig.dataset.kind === 'heatmap') { heatmaps += 1; if (ok) { heatmapsLoaded += 1; } }
-  });
-  var root = document.documentElement;
-  root.setAttribute('data-figures-total', figures.length);
-  root.setAttribute('data-figures-loaded', loaded);
-  root.setAttribute('data-heatmaps-total', heatmaps);
-  root.setAttribute('data-heatmaps-loaded', heatmapsLoaded);
-});
-"""
-
-
-def _e(x) -> str:
-    return html.escape(str(x))
-
-
-def _fmt(x, digits: int = 3) -> str:
-    """A fixed-point number (percentiles, shares, scores)."""
-    if x is None:
-        return ""
-    x = float(x)
-    return f"{x:.{digits}f}" if np.isfinite(x) else "\u2013"
-
-
-def _fmt_q(q) -> str:
-    """A p- or q-value: two decimals down to 0.01, then scientific; exact zeros are underflow."""
-    q = float(q)
-    if not np.isfinite(q):
-        return "\u2013"
-    if q == 0.0:
-        return "&lt;1e-300"
-    return f"{q:.2f}" if q >= 0.01 else f"{q:.1e}"
-
-
-def _chip(word: str) -> str:
-    cls = word.replace("attention-", "")
-    return f'<span class="chip {_e(cls)}">{_e(word)}</span>'
-
-
-def _sign(s: int) -> str:
-    return {1: "+1", -1: "\u22121", 0: "0"}.get(int(s), "\u2013")
-
-
-def _table(header: list[str], rows: list[list[str]], text_cols: int = 1, left_last: bool = False) -> str:
-    def cls(i):
-        return "t" if i < text_cols or (left_last and i == len(header) - 1) else ""
-
-    th = "".join(f'<th class="{cls(i)}">{_e(h)}</th>' for i, h in enumerate(header))
-    body = "".join("<tr>" + "".join(f'<td class="{cls(i)}">{c}</td>' for i, c in enumerate(r)) + "</tr>"
-                   for r in rows)
-    head = f"<thead><tr>{th}</tr></thead>" if any(header) else ""
-    return f"<table>{head}<tbody>{body}</tbody></table>"
-
-
-def _figure_html(fig: Figure, out: Path) -> str:
-    data = base64.b64encode(fig.files["png"].read_bytes()).decode("ascii")
-    rel = {ext: p.relative_to(out).as_posix() for ext, p in fig.files.items()}
-    return (f'<figure id="fig-{_e(fig.key)}" data-kind="{_e(fig.kind)}">'
-            f'<img src="data:image/png;base64,{data}" alt="{_e(fig.title)}">'
-            f'<figcaption><b>{_e(fig.title)}.</b> {_e(fig.caption)} '
-            f'<a href="{_e(rel["png"])}">PNG</a> \u00b7 <a href="{_e(rel["svg"])}">SVG</a></figcaption></figure>')
-
-
-def _mediation_html(rows: list[dict]) -> str:
-    """The mediation section: each labelled pair's share in the full write and in each part."""
-    if not rows:
-        return ""
-    names = [p for p in ("unembed", "rest") if p in rows[0]]
-
-    def cell(r, p):
-        return "not scanned" if np.isnan(r[p]) else f"{r[p]:.3f} ({r[p + '_write_fraction']:.3f})"
-
-    body = [[_e(r["writer"]), _e(r["responder"]), _e(r["response"]), _e(r["share"]), f"{r['full']:.3f}"]
-            + [cell(r, p) for p in names] for r in rows]
-    table = _table(["writer", "responder", "response", "share", "full write"]
-                   + [f"{p} part (write fraction)" for p in names], body, text_cols=4)
-    return f"""<h2 id="mediation">Mediation: through which direction the responder reads the writer</h2>
-<p class="muted">For every pair labelled on the full write: its top-k share (bottom-k for attention-lowering
-pairs) when the write is replaced by its projection on the written token's own unembedding direction
-(<b>unembed</b>) or by the remainder (<b>rest</b>), with the mean fraction of the write's squared norm each
-part carries. Rank statistics are blind to magnitude: a part that carries 1&nbsp;% of the write can still rank
-perfectly, so never call a pair mediated by a part with a small fraction.</p>
-{table}
-"""
-
-
-def _page(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, figs: list[Figure],
-          tables: dict[str, Path], out: Path, mediation: list[dict] = ()) -> str:
-    a = scan.attrs
-    ks = [int(k) for k in scan.k]
-    k0 = ks[0]
-    done = scan.done
-    lab = scan.label
-    hl = heads.heads["label"]
-    pred = comp["prediction"]
-    by_key = {f.key: f for f in figs}
-
-    def figs_of(*keys):
-        return "".join(_figure_html(by_key[k], out) for k in keys if k in by_key)
-
-    counts = [
-        (int(done.sum()), "pairs scanned"),
-        (int((lab == 1).sum()), f"{sides.for_scan(a).words.raising} pairs"),
-        (int((lab == -1).sum()), f"{sides.for_scan(a).words.lowering} pairs"),
-        (int((hl != LABEL_NOT_COMPUTED).sum()), "heads profiled"),
-        (int((hl == 1).sum()), "copying heads"),
-        (int((hl == -1).sum()), "suppressing heads"),
-        (int((pred == -1).sum()), "compensating pairs"),
-        (int((pred == 1).sum()), "reinforcing pairs"),
-        (len(candidates), "shortlisted heads"),
-    ]
-    summary = "".join(f"<div><b>{c}</b><span>{_e(t)}</span></div>" for c, t in counts)
-
-    # shortlist
-    rows = []
-    for rank, c in enumerate(candidates, 1):
-        verbs = {"copying": "copies", "suppressing": "suppresses", "neutral": "neutral"}
-        writers = "<br>".join(
-            f'<span class="mono">{_e(r["writer"])}</span> &middot; mean pct {_fmt(r["mean_percentile"])} &middot; '
-            f'q {_fmt_q(r["q_value"])} &middot; writer {verbs[r["writer_ov"]]} &middot; {_chip(r["prediction"])} '
-            f'&middot; Q-comp {_fmt(r["q_composition"])} (z {_fmt(r["q_composition_z"], 1)})' for r in c.writers[:8])
-        if len(c.writers) > 8:
-            writers += f"<br>\u2026 and {len(c.writers) - 8} more (shortlist.csv)"
-        rows.append([str(rank), _e(c.kind), f'<span class="mono">{_e(c.label)}</span>',
-                     _chip("suppressing" if c.kind == "suppressor" else "copying"), _fmt(c.ov_mean_percentile),
-                     _fmt_q(c.ov_q_value), _fmt(c.copying_score), writers])
-    shortlist_html = (_table(["rank", "kind", "head", "own write", "OV mean pct", "OV q", "copying score",
-                              "writers it responds to (strongest first)"], rows, text_cols=4, left_last=True)
-                      if rows else '<p class="muted">No head is both labelled and responding in the required '
-                                   'direction: the shortlist is empty.</p>')
-
-    # compensation
-    crow = []
-    for i in sorted(map(tuple, np.argwhere(np.isin(pred, (-1, 1)))),
-                    key=lambda i: (pred[i], -abs(scan.mean_percentile[i] - 0.5)))[:MAX_TABLE_ROWS]:
-        crow.append([f'<span class="mono">{i[0]}.{i[1]}</span>', f'<span class="mono">{i[2]}.{i[3]}</span>',
-                     _chip(PREDICTION_WORDS[int(pred[i])]), _sign(comp["s_writer"][i]), _sign(comp["s_response"][i]),
-                     _sign(comp["s_responder"][i]), _fmt(scan.mean_percentile[i]), _fmt_q(scan.q_value[i]),
-                     _fmt(heads.model_space["q_composition"][i])])
-    comp_html = (_table(["writer", "responder", "prediction", "s_U (writer write)", "s_QK (response)",
-                         "s_R (responder write)", "pair mean pct", "pair q", "Q-comp"], crow, text_cols=3)
-                 if crow else '<p class="muted">No pair has three non-neutral signs.</p>')
-
-    # labelled pairs
-    prow = []
-    for i in sorted(map(tuple, np.argwhere(np.isin(lab, (-1, 1)))),
-                    key=lambda i: -abs(scan.mean_percentile[i] - 0.5))[:MAX_TABLE_ROWS]:
-        prow.append([f'<span class="mono">{i[0]}.{i[1]}</span>', f'<span class="mono">{i[2]}.{i[3]}</span>',
-                     _chip(sides.for_scan(a).words[int(lab[i])]), _fmt(scan.mean_percentile[i]),
-                     _fmt(scan.top_share[i][0], 4), _fmt(scan.bottom_share[i][0], 4), _fmt_q(scan.q_value[i]),
-                     str(int(scan.rows_evaluated[i]))])
-    pairs_html = (_table(["writer", "responder", "label", "mean pct", f"top-{k0} share", f"bottom-{k0} share",
-                          "q-value", "rows"], prow, text_cols=3)
-                  if prow else '<p class="muted">No pair is labelled.</p>')
-
-    # heads: labelled ones first, every head in a folded table
-    hp = heads.heads
-    L, H = hl.shape
-
-    def head_row(l, h):
-        return [f'<span class="mono">{l}.{h}</span>', _chip(HEAD_LABEL_WORDS.get(int(hl[l, h]), "not computed")),
-                _fmt(hp["mean_percentile"][l, h]), _fmt(hp["top_share"][l, h][0], 4),
-                _fmt(hp["bottom_share"][l, h][0], 4), _fmt_q(hp["q_value"][l, h]),
-                _fmt(hp["eigen_copying_score"][l, h])]
-
-    head_header = ["head", "OV label", "OV mean pct", f"top-{k0} share", f"bottom-{k0} share", "q-value",
-                   "copying score"]
-    labelled_heads = [head_row(l, h) for l in range(L) for h in range(H) if hl[l, h] in (1, -1)]
-    heads_html = (_table(head_header, labelled_heads, text_cols=2) if labelled_heads
-                  else '<p class="muted">No head is labelled copying or suppressing.</p>')
-    heads_html += (f"<details><summary>All {L * H} heads</summary>"
-                   + _table(head_header, [head_row(l, h) for l in range(L) for h in range(H)], text_cols=2)
-                   + "</details>")
-
-    info = [
-        ("checkpoint", a.get("checkpoint", "")), ("family", a.get("family", "")),
-        ("model", f"{a.get('n_layers')} layers \u00d7 {a.get('n_heads')} heads, width {a.get('d_model')}, "
-                  f"head width {a.get('d_head')}, vocabulary {a.get('vocab_size')}"),
-        ("token table", f"{a.get('table')} (position {a.get('position')})"),
-        ("side / orientation", f"{a.get('side', 'query')} / {a.get('orientation')}"),
-        ("writers / responders scanned", f"{a.get('writers')} / {a.get('responders')}"),
-        ("keys per row n", a.get("keys_per_row")), ("k", ", ".join(map(str, ks))),
-        ("label thresholds", f"FDR {a.get('fdr')} (Benjamini-Hochberg over all scanned pairs), "
-                             f"|mean percentile \u2212 0.5| \u2265 {a.get('min_effect')}"),
-        ("head labels", f"FDR {heads.heads_attrs.get('fdr')} over all {L * H} heads, "
-                        f"|mean percentile \u2212 0.5| \u2265 {heads.heads_attrs.get('min_effect')}; "
-                        f"token table {heads.heads_attrs.get('table')}"),
-        ("composition baseline", f"{heads.model_space_attrs.get('baseline_draws')} Gaussian draws, "
-                                 f"seed {heads.model_space_attrs.get('baseline_seed')}"),
-        ("scan created", a.get("created", "")), ("tool version", a.get("tool_version", "")),
-        ("weights fingerprint", f'<span class="mono">{_e(a.get("weights_fingerprint", ""))}</span>'),
-    ]
-    info_html = _table(["", ""], [[_e(k), v if k == "weights fingerprint" else _e(v)] for k, v in info], text_cols=2)
-    files_html = " ".join(f'<a href="{_e(p.relative_to(out).as_posix())}">{_e(p.name)}</a>' for p in tables.values())
-
-    caution = (f'<div class="caution"><strong>Read these as predictions, not findings.</strong> {_e(CAUTION)} '
-               "Rank statistics are blind to magnitude: a pair can rank its diagonal perfectly with a write "
-               "too small to matter. Near-duplicate tokens create near-ties in real vocabularies; the midrank "
-               "rule counts ties as half, so they pull shares towards the null rather than inventing effects.</div>"
-               + "".join(f'<p class="caution">{_e(n)}</p>' for n in side_notes(scan)))
-
-    return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta name="viewport" content="width=device-width, initial-scale=1">
-<title>Composition report: {_e(Path(str(a.get('checkpoint', ''))).name or 'scan')}</title>
-<style>{_CSS}</style>
-</head>
-<body>
-<header>
-<h1>Head-to-head composition, from the weights alone</h1>
-<p>{_e(a.get('checkpoint', ''))} &middot; {_e(a.get('family', ''))} &middot; scan file {_e(scan.path.name)}</p>
-</header>
-<main>
-<nav><a href="#summary">Summary</a><a href="#shortlist">Shortlist</a><a href="#compensation">Compensation</a>
-<a href="#token-space">Token-space heatmaps</a><a href="#heads">Heads</a><a href="#model-space">Model space</a>
-<a href="#pairs">Labelled pairs</a><a href="#definitions">Definitions</a><a href="#files">Files</a></nav>
-{caution}
-<h2 id="summary">Summary</h2>
-<div class="summary">{summary}</div>
-<p class="muted">Every heatmap puts writer heads down the side and responder heads across, labelled
-<span class="mono">layer.head</span>, with dark lines at layer boundaries. Continuous statistics share one
-diverging scale whose cream middle is the statistic's null value: cream means "what chance gives",
-brick means above the null, teal below it. Hatched cells have no value (the responder is not in a later
-layer, or the pair was not scanned).</p>
-
-<h2 id="shortlist">Shortlist: candidate suppressor and back-up heads</h2>
-<p class="muted"><b>Suppressor</b> candidates suppress the token they attend to (OV label suppressing) and are
-attention-raising towards at least one writer; <b>back-up</b> candidates copy (OV label copying) and are
-attention-lowering towards at least one writer. Ranked by the smaller of the two effect sizes, the head's own
-|OV mean percentile &minus; 0.5| and the pair |mean percentile &minus; 0.5| of its strongest writer.</p>
-{shortlist_html}
-
-<h2 id="compensation">Compensation predictions</h2>
-<p class="muted">Three signs per pair: s_U, the writer's own effect on the written token's logit (+1 copying,
-&minus;1 suppressing); s_QK, the responder's response (+1 raising, &minus;1 lowering); s_R, the responder's own
-write. A negative product predicts that the responder works against what the writer does to the token's logit
-(self-repair when the writer is removed): <b>compensating</b>. A positive product: <b>reinforcing</b>.
-A neutral sign anywhere: no prediction.</p>
-{figs_of("compensation")}
-{comp_html}
-
-<h2 id="token-space">Token-space statistics of the scanned pairs</h2>
-{figs_of("mean_percentile", f"top_{ks[-1]}_enrichment", f"bottom_{ks[-1]}_enrichment", "pair_labels")}
-
-<h2 id="heads">Heads: copying or suppressing</h2>
-{figs_of("head_copying")}
-{heads_html}
-
-<h2 id="model-space">Model-space scores of every pair</h2>
-<p class="muted">Computed from the weight matrices alone (norms folded), for every pair, whatever the scan's
-selection. They say how much two heads' subspaces overlap, not which tokens are involved.</p>
-{figs_of("q_composition", "k_composition", "v_composition", "projection_kernel_q", "projection_kernel_k",
-         "projection_kernel_v")}
-
-{_mediation_html(list(mediation))}
-<h2 id="pairs">Labelled pairs</h2>
-{figs_of("pair_histograms")}
-{pairs_html}
-
-<h2 id="definitions">What the statistics mean</h2>
-<dl class="defs">
-<dt>Token matrix and diagonal rank</dt>
-<dd>For a writer head U and a later responder head R, row t of the token matrix holds R's attention score
-from a query on which U has written token t (U attending fully to t) to every key token j, under the
-token-table assumption ({_e(a.get('table'))}). The diagonal rank of row t counts the keys that score higher
-than t itself, ties counted half (midrank); 0 is the top. The percentile is 1 &minus; rank/(n &minus; 1):
-1 means the responder prefers the very token that was written.</dd>
-<dt>Mean percentile</dt><dd>The average percentile over the evaluated rows. Null value 0.5: for
-exchangeable continuous scores the diagonal's rank is uniform.</dd>
-<dt>Top-k and bottom-k share, enrichment</dt><dd>The fraction of rows whose diagonal is among the k highest
-(lowest) of its row; null value k/n. Enrichment is the share divided by k/n.</dd>
-<dt>Labels</dt><dd>Attention-raising (attention-lowering): a two-sided test of the mean percentile against
-0.5 whose Benjamini-Hochberg q-value over all scanned pairs is at most the FDR, and an effect
-|mean percentile &minus; 0.5| of at least the threshold. With thousands of rows a tiny effect is significant;
-the effect threshold keeps such pairs neutral.</dd>
-<dt>Copying and suppressing heads</dt><dd>The OV token matrix F[t,u] says how much attending to t raises
-the logit of u. Its diagonal is ranked within rows with the same exact kernel, and labelled with the same
-rule over all heads: copying raises the attended token's own logit above the others, suppressing lowers it.
-The eigenvalue copying score &Sigma; Re &lambda; / &Sigma; |&lambda;| over the eigenvalues of the
-head-width matrix B<sup>T</sup>A (Elhage et al. 2021) is a second, weight-only view in [&minus;1, 1].</dd>
-<dt>Composition scores</dt><dd>Q-, K- and V-composition: the Frobenius norm of the product of the writer's
-OV matrix with the responder's QK matrix (query or key side) or OV matrix, divided by the product of their
-norms (Elhage et al. 2021). The baseline is the same score for Gaussian matrices of the same shapes
-(about 1/&radic;d).</dd>
-<dt>Projection kernel</dt><dd>The sum of squared cosines of the principal angles between the writer's write
-subspace and the responder's read subspace (Hamm &amp; Lee 2008; Yamagiwa, Takase &amp; Shimodaira 2026):
-its dimension for identical subspaces, 0 for orthogonal ones, ab/d on average for random ones.</dd>
-</dl>
-{caution}
-
-<h2 id="files">Files and provenance</h2>
-<p class="files">CSV tables: {files_html}</p>
-{info_html}
-</main>
-<script>{_SCRIPT}</script>
-</body>
-</html>
-"""
+def head_view(scan: Scan, head: tuple[int, int], role: str) -> dict:
+    """One head's scanned pairs as ``role`` ("responder": against every writer; "writer": against
+    every responder): other head labels, mean percentile, its 95 % interval and the label."""
+    l, h = head
+    if role == "responder":
+        done, sel = scan.done[:, :, l, h], (slice(None), slice(None), l, h)
+    else:
+        done, sel = scan.done[l, h], (l, h)
+    idx = np.argwhere(done)  # [n, 2]
+    pick = lambda name: scan.arrays[name][sel][tuple(idx.T)] if idx.size else np.zeros(0)  # noqa: E731
+    return {"other": "writer" if role == "responder" else "responder",
+            "labels": [f"{a}.{b}" for a, b in idx], "mean": pick("mean_percentile"),
+            "low": pick("mean_ci_low"), "high": pick("mean_ci_high"), "label": pick("label")}
