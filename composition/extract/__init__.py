@@ -8,10 +8,12 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import re
 
 from ..errors import CompositionError
 from .weights import Weights
 from . import bert, gpt2, layout, llama, neox
+from ._build import check_config
 from .files import TensorSource, locate
 
 FAMILIES = {"gpt2": gpt2, "gpt-neox": neox, "llama": llama, "bert": bert}
@@ -36,6 +38,8 @@ def load_weights(checkpoint: str | os.PathLike, family: str | None = None,
         raise CompositionError("give either --family or --layout, not both.")
     spec = layout.read_layout(layout_file) if layout_file is not None else None
     weights_file, config = locate(checkpoint, need_config=spec is None)
+    config_file = weights_file.parent / "config.json"
+    check_config(config, config_file if config_file.is_file() else weights_file)
     src = TensorSource(weights_file)
     if spec is not None:
         weights = layout.read(src, config, spec)
@@ -54,7 +58,20 @@ def load_weights(checkpoint: str | os.PathLike, family: str | None = None,
     for i in range(weights.n_layers):  # read and check every layer once
         weights.layers[i]
     _check_sizes(weights)
+    _check_layer_count(weights, src)
     return dataclasses.replace(weights, tensors_used=tuple(src.used()), tensors_ignored=tuple(src.ignored()))
+
+
+_LAYER_INDEX = re.compile(r"(?:^|\.)(?:h|layers?|blocks?|block)\.(\d+)\.")
+
+
+def _check_layer_count(w: Weights, src: TensorSource) -> None:
+    """Refuse a config that gives fewer layers than the checkpoint's tensors hold."""
+    for name in src.ignored():
+        m = _LAYER_INDEX.search(name)
+        if m and int(m.group(1)) >= w.n_layers:
+            raise CompositionError(f"the config gives {w.n_layers} layers, but {src.file_of(name)} holds tensor "
+                                   f"{name} of layer {m.group(1)}; fix the layer count in the config.")
 
 
 def _check_sizes(w: Weights) -> None:
