@@ -174,7 +174,7 @@ def settings_change(attrs: dict, weights) -> str | None:
     if int(attrs.get("format_version", 1)) < 2:
         now = weights.tensor_fingerprint()
         if old_fp != now:
-            return f"the checkpoint's weights differ (fingerprint {old_fp[:12]} in the file, {now[:12]} now)"
+            return f"the checkpoint differs: its weights differ (weights fingerprint {old_fp[:12]} in the file, {now[:12]} now)"
         return None
     try:
         old = json.loads(attrs.get("model_settings", "{}"))
@@ -187,7 +187,7 @@ def settings_change(attrs: dict, weights) -> str | None:
         return (", ".join(parts[:-1]) + " and " + parts[-1] if len(parts) > 1 else parts[0]) + " since the scan started"
     now = weights.fingerprint()
     if old_fp != now:
-        return f"the checkpoint's weights differ (fingerprint {old_fp[:12]} in the file, {now[:12]} now)"
+        return f"the checkpoint differs: its weights differ (weights fingerprint {old_fp[:12]} in the file, {now[:12]} now)"
     return None
 
 
