@@ -79,6 +79,11 @@ def rotary_from_config(config: dict, head_dim: int, style: str = "split-half",
         params = {**scaling, **params}
     base = params.get("rope_theta", config.get("rope_theta", config.get("rotary_emb_base", 10000.0)))
     fraction = params.get("partial_rotary_factor", config.get("partial_rotary_factor", config.get("rotary_pct")))
+    from ._build import positive_float
+
+    base = positive_float(base, "the config's rotary base (rope_theta / rotary_emb_base)")
+    if fraction is not None:
+        fraction = positive_float(fraction, "the config's partial_rotary_factor / rotary_pct")
     if config.get("rotary_dim") is not None:
         dims = int(config["rotary_dim"])
     else:
