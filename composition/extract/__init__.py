@@ -140,6 +140,8 @@ def describe_weights(w: Weights, rotary_offsets: tuple[int, int] | None = None) 
         (f"tensors used ({len(w.tensors_used)})", _grouped(w.tensors_used)),
         (f"tensors ignored ({len(w.tensors_ignored)})", _grouped(w.tensors_ignored) or "none"),
         ("fingerprint", w.fingerprint()),
+        ("fingerprint covers", "every tensor above and " + "; ".join(f"{k} {v}" for k, v in w.settings().items()
+                                                                   if k != "rotary frequencies")),
     ]
     return rows
 
