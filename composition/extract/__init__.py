@@ -8,11 +8,13 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import re
 from collections.abc import Mapping
 
 from ..errors import CompositionError
 from .weights import Weights
 from . import bert, gpt2, layout, llama, neox
+from ._build import check_config
 from .files import TensorSource, locate
 
 FAMILIES = {"gpt2": gpt2, "gpt-neox": neox, "llama": llama, "bert": bert}
@@ -42,10 +44,13 @@ def load_weights(checkpoint: str | os.PathLike | Mapping, family: str | None = N
         from .memory import memory_source
 
         src, config = memory_source(checkpoint, config)
+        check_config(config, "the config mapping given with the state dict")
     else:
         if config is not None:
             raise CompositionError("config= goes with a state dict in memory; a checkpoint path reads its own config.json.")
         weights_file, config = locate(checkpoint, need_config=spec is None)
+        config_file = weights_file.parent / "config.json"
+        check_config(config, config_file if config_file.is_file() else weights_file)
         src = TensorSource(weights_file)
     if spec is not None:
         weights = layout.read(src, config, spec)
@@ -64,7 +69,20 @@ def load_weights(checkpoint: str | os.PathLike | Mapping, family: str | None = N
     for i in range(weights.n_layers):  # read and check every layer once
         weights.layers[i]
     _check_sizes(weights)
+    _check_layer_count(weights, src)
     return dataclasses.replace(weights, tensors_used=tuple(src.used()), tensors_ignored=tuple(src.ignored()))
+
+
+_LAYER_INDEX = re.compile(r"(?:^|\.)(?:h|layers?|blocks?|block)\.(\d+)\.")
+
+
+def _check_layer_count(w: Weights, src: TensorSource) -> None:
+    """Refuse a config that gives fewer layers than the checkpoint's tensors hold."""
+    for name in src.ignored():
+        m = _LAYER_INDEX.search(name)
+        if m and int(m.group(1)) >= w.n_layers:
+            raise CompositionError(f"the config gives {w.n_layers} layers, but {src.file_of(name)} holds tensor "
+                                   f"{name} of layer {m.group(1)}; fix the layer count in the config.")
 
 
 def _check_sizes(w: Weights) -> None:
@@ -133,6 +151,8 @@ def describe_weights(w: Weights, rotary_offsets: tuple[int, int] | None = None) 
         (f"tensors used ({len(w.tensors_used)})", _grouped(w.tensors_used)),
         (f"tensors ignored ({len(w.tensors_ignored)})", _grouped(w.tensors_ignored) or "none"),
         ("fingerprint", w.fingerprint()),
+        ("fingerprint covers", "every tensor above and " + "; ".join(f"{k} {v}" for k, v in w.settings().items()
+                                                                   if k != "rotary frequencies")),
     ]
     return rows
 

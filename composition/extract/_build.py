@@ -3,6 +3,7 @@ expansion and lazily loaded layers."""
 
 from __future__ import annotations
 
+import math
 from collections import OrderedDict
 from collections.abc import Callable, Sequence
 from dataclasses import fields
@@ -18,16 +19,82 @@ CACHE_BYTES = 2 << 30  # layers kept in memory at once (float32 bytes)
 
 
 def config_int(config: dict, family: str, *keys: str, default=None) -> int:
-    """The first of ``keys`` present in the config, as an int."""
+    """The first of ``keys`` present in the config, as a positive int (an integral number only)."""
     for key in keys:
         if config.get(key) is not None:
-            try:
-                return int(config[key])
-            except (TypeError, ValueError):
-                raise CompositionError(f"the {family} config's {key} = {config[key]!r} is not an integer.") from None
+            return _positive_int(config[key], f"the {family} config's {key}")
     if default is not None:
         return default
     raise CompositionError(f"the {family} config lacks a usable {keys[0]!r} entry.")
+
+
+def _positive_int(value, what: str) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise CompositionError(f"{what} = {value!r} is not an integer.")
+    if isinstance(value, float) and not (math.isfinite(value) and value.is_integer()):
+        raise CompositionError(f"{what} = {value!r} is not an integer.")
+    if not 0 < value <= 1 << 40:
+        raise CompositionError(f"{what} = {value!r} is not a positive integer of a usable size.")
+    return int(value)
+
+
+# configuration keys read by some reader, by the kind of value they must hold
+_INT_KEYS = ("n_embd", "n_head", "n_layer", "n_inner", "n_positions", "n_ctx", "vocab_size", "hidden_size",
+             "num_attention_heads", "num_hidden_layers", "num_key_value_heads", "intermediate_size", "head_dim",
+             "rotary_dim", "max_position_embeddings", "type_vocab_size")
+_POSITIVE_FLOAT_KEYS = ("layer_norm_epsilon", "layer_norm_eps", "rms_norm_eps", "rope_theta", "rotary_emb_base")
+_FRACTION_KEYS = ("partial_rotary_factor", "rotary_pct")
+_STRING_KEYS = ("activation_function", "hidden_act", "position_embedding_type", "model_type")
+_BOOL_KEYS = ("tie_word_embeddings", "attention_bias", "mlp_bias", "use_parallel_residual", "scale_attn_weights",
+              "scale_attn_by_inverse_layer_idx")
+_SCALING_FLOAT_KEYS = ("factor", "low_freq_factor", "high_freq_factor", "rope_theta", "partial_rotary_factor")
+
+
+def check_config(config: dict, source) -> None:
+    """Check every config value a reader uses for its type, range and finiteness, before any
+    tensor is read: one sentence naming the file and key for the first bad one."""
+    where = f"the config of {source}"
+    for key in _INT_KEYS:
+        if config.get(key) is not None:
+            _positive_int(config[key], f"{where}: {key}")
+    for key in _POSITIVE_FLOAT_KEYS:
+        if key in config:
+            positive_float(config[key], f"{where}: {key}")
+    for key in _FRACTION_KEYS:
+        if config.get(key) is not None:
+            v = positive_float(config[key], f"{where}: {key}")
+            if v > 1:
+                raise CompositionError(f"{where}: {key} = {v!r} is not a fraction in (0, 1].")
+    for key in _STRING_KEYS:
+        if config.get(key) is not None and not isinstance(config[key], str):
+            raise CompositionError(f"{where}: {key} = {config[key]!r} is not a string.")
+    for key in _BOOL_KEYS:
+        if config.get(key) is not None and not isinstance(config[key], bool):
+            raise CompositionError(f"{where}: {key} = {config[key]!r} is not true or false.")
+    for key in ("rope_scaling", "rope_parameters"):
+        value = config.get(key)
+        if value is None:
+            continue
+        if not isinstance(value, dict):
+            raise CompositionError(f"{where}: {key} = {value!r} is not a JSON object.")
+        for sub in _SCALING_FLOAT_KEYS:
+            if sub in value:
+                positive_float(value[sub], f"{where}: {key}.{sub}")
+        for sub in ("rope_type", "type"):
+            if value.get(sub) is not None and not isinstance(value[sub], str):
+                raise CompositionError(f"{where}: {key}.{sub} = {value[sub]!r} is not a string.")
+        if value.get("original_max_position_embeddings") is not None:
+            _positive_int(value["original_max_position_embeddings"], f"{where}: {key}.original_max_position_embeddings")
+
+
+def positive_float(value, what: str) -> float:
+    """A finite, positive number, or a sentence naming ``what``."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise CompositionError(f"{what} = {value!r} is not a number.")
+    v = float(value)
+    if not math.isfinite(v) or v <= 0:
+        raise CompositionError(f"{what} = {value!r} is not a finite positive number.")
+    return v
 
 
 def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int]:
@@ -44,7 +111,7 @@ def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int]:
 
 def activation(config: dict, key: str, default: str) -> str:
     name = config.get(key, default)
-    if name not in ACTIVATIONS:
+    if not isinstance(name, str) or name not in ACTIVATIONS:
         raise CompositionError(f"the config's {key} {name!r} is not supported (supported: {', '.join(ACTIVATIONS)}).")
     return ACTIVATIONS[name]
 

@@ -96,8 +96,9 @@ class TensorSource:
             raise CompositionError(f"tensor {name} is missing from {self.path}.")
 
     def _open_index(self, index: Path) -> None:
+        _check_regular(index, "shard index")
         try:
-            data = json.loads(index.read_text())
+            data = json.loads(index.read_text(), object_pairs_hook=_unique_keys(f"the shard index {index}"))
         except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
             raise CompositionError(f"the shard index {index} is not valid JSON ({_first_line(exc)}).") from None
         wmap = data.get("weight_map") if isinstance(data, dict) else None
@@ -111,6 +112,13 @@ class TensorSource:
             if not p.is_file():
                 raise CompositionError(f"shard {shard} named by {index} does not exist.")
             shards[shard] = _open_file(p)
+        seen: dict[str, str] = {}
+        for shard, f in shards.items():
+            for name in f.names():
+                if name in seen:
+                    raise CompositionError(f"tensor {name} is held by two shards of {index} ({seen[name]} and "
+                                           f"{shard}); which one is meant is unclear.")
+                seen[name] = shard
         for name, shard in wmap.items():
             if not shards[shard].has(name):
                 raise CompositionError(f"the shard index {index} places tensor {name} in {shard}, which does not hold it.")
@@ -139,7 +147,10 @@ def locate(checkpoint: str | os.PathLike, need_config: bool = True) -> tuple[Pat
                 "or a shard index .index.json)."
             )
         weights_file, config_dir = p, p.parent
+        _check_regular(p, "checkpoint file")
     config_path = config_dir / CONFIG_NAME
+    if config_path.exists() and not config_path.is_file():
+        raise CompositionError(f"{config_path} is not a regular file.")
     if config_path.is_file():
         try:
             config = json.loads(config_path.read_text())
@@ -165,7 +176,8 @@ def _pick(directory: Path) -> Path:
         ("torch file", lambda f: f.suffix in TORCH),
         ("HDF5 file", lambda f: f.suffix in HDF5),
     ]
-    files = sorted(f for f in directory.iterdir() if f.is_file())
+    files = sorted(f for f in directory.iterdir() if f.is_file() and not f.name.startswith(".")
+                   and not (f.suffix in HDF5 and _is_output_of_this_tool(f)))
     for kind, test in kinds:
         found = [f for f in files if test(f)]
         if len(found) == 1:
@@ -201,6 +213,7 @@ class _Safetensors(_File):
         from safetensors import safe_open
 
         self.path = path
+        _safetensors_names_unique(path)
         try:
             self._handle = safe_open(str(path), framework="pt")
             self._shapes = {n: tuple(self._handle.get_slice(n).get_shape()) for n in self._handle.keys()}
@@ -229,15 +242,8 @@ class _HDF5(_File):
         self.path = path
         try:
             self._handle = h5py.File(path, "r")
-            datasets: dict[str, str] = {}
-
-            def visit(name, obj):
-                if isinstance(obj, h5py.Dataset):
-                    datasets[name.strip("/").replace("/", ".")] = name
-
-            self._handle.visititems(visit)
-            self._datasets = datasets
-            self._shapes = {n: tuple(self._handle[p].shape) for n, p in datasets.items()}
+            self._datasets = _hdf5_datasets(self._handle, path)
+            self._shapes = {n: tuple(self._handle[p].shape) for n, p in self._datasets.items()}
         except CompositionError:
             raise
         except Exception as exc:  # noqa: BLE001
@@ -302,8 +308,7 @@ def _torch_load(path: Path) -> dict:
 
 
 def _open_file(path: Path) -> _File:
-    if not path.is_file():
-        raise CompositionError(f"checkpoint file {path} does not exist.")
+    _check_regular(path, "checkpoint file")
     if path.suffix in SAFETENSORS:
         return _Safetensors(path)
     if path.suffix in HDF5:
@@ -311,6 +316,101 @@ def _open_file(path: Path) -> _File:
     if path.suffix in TORCH:
         return _Torch(path)
     raise CompositionError(f"{path} is not a checkpoint file type this tool reads.")
+
+
+def _hdf5_datasets(f, path: Path) -> dict[str, str]:
+    """Tensor name -> dataset path of every dataset of an HDF5 checkpoint, refusing anything that
+    reads outside the file (external or soft links, external storage, virtual datasets) and two
+    datasets that name the same tensor."""
+    import h5py
+
+    found: dict[str, str] = {}
+    stack = ["/"]
+    while stack:
+        gpath = stack.pop()
+        group = f[gpath]
+        for key in group:
+            full = gpath.rstrip("/") + "/" + key
+            link = group.get(key, getlink=True)
+            if isinstance(link, h5py.ExternalLink):
+                raise CompositionError(f"{path} links {full} to another file; checkpoints are read only from inside themselves.")
+            if isinstance(link, h5py.SoftLink):
+                raise CompositionError(f"{path} holds a soft link {full}; checkpoints with links are not read.")
+            obj = group[key]
+            if isinstance(obj, h5py.Group):
+                stack.append(full)
+                continue
+            if not isinstance(obj, h5py.Dataset):
+                continue
+            if obj.is_virtual:
+                raise CompositionError(f"dataset {full} of {path} is a virtual dataset that reads other files; "
+                                       "checkpoints are read only from inside themselves.")
+            if obj.external:
+                raise CompositionError(f"dataset {full} of {path} keeps its data in an external file; "
+                                       "checkpoints are read only from inside themselves.")
+            name = full.strip("/").replace("/", ".")
+            if name in found:
+                raise CompositionError(f"{path} holds two datasets for tensor {name} ({found[name]} and {full}); "
+                                       "which one is meant is unclear.")
+            found[name] = full
+    return found
+
+
+def _check_regular(path: Path, what: str) -> None:
+    """A file to read must be a regular file (a FIFO or device would hang or never end)."""
+    import stat
+
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        raise CompositionError(f"{what} {path} does not exist.") from None
+    except OSError as exc:
+        raise CompositionError(f"{what} {path} cannot be read ({exc.strerror}).") from None
+    if not stat.S_ISREG(mode):
+        raise CompositionError(f"{what} {path} is not a regular file.")
+
+
+def _unique_keys(what: str):
+    """A json ``object_pairs_hook`` that refuses a key given twice."""
+    def hook(pairs):
+        out = {}
+        for key, value in pairs:
+            if key in out:
+                raise CompositionError(f"{what} names {key!r} twice.")
+            out[key] = value
+        return out
+    return hook
+
+
+def _safetensors_names_unique(path: Path) -> None:
+    """Refuse a safetensors header that names a tensor twice (the reader would keep one)."""
+    import struct
+
+    with open(path, "rb") as f:
+        head = f.read(8)
+        if len(head) < 8:
+            return  # the reader's own check reports a truncated file
+        (n,) = struct.unpack("<Q", head)
+        if n > 100 * 2**20:
+            raise CompositionError(f"{path} has a safetensors header of {n} bytes, more than this tool reads.")
+        raw = f.read(n)
+    try:
+        json.loads(raw, object_pairs_hook=_unique_keys(f"the safetensors header of {path}"))
+    except (ValueError, UnicodeDecodeError):
+        return  # the reader reports a corrupt header
+
+
+def _is_output_of_this_tool(path: Path) -> bool:
+    """A scan file or heads file written into the checkpoint directory is not a checkpoint."""
+    import h5py
+
+    try:
+        with h5py.File(path, "r") as f:
+            fmt = f.attrs.get("format")
+    except Exception:  # noqa: BLE001 - unreadable files are reported when chosen
+        return False
+    fmt = fmt.decode(errors="replace") if isinstance(fmt, bytes) else fmt
+    return fmt in ("composition-scan", "composition-heads")
 
 
 def _hdf5_config(path: Path, need_config: bool = True) -> dict:

@@ -44,7 +44,10 @@ _ACTS = ("gelu", "gelu-tanh", "relu", "silu")
 
 def read_layout(path: str | Path) -> dict:
     """Parse and check a layout file; every fault is one sentence naming the file and key."""
+    from .files import _check_regular
+
     path = Path(path)
+    _check_regular(path, "the layout file")
     try:
         spec = json.loads(path.read_text())
     except OSError as exc:
@@ -82,6 +85,20 @@ def read_layout(path: str | Path) -> dict:
                             or rot.get("style", "split-half") not in STYLES):
         raise CompositionError(f"the layout file {path} needs rotary as {{\"dims\": N, \"style\": "
                                f"\"split-half\"|\"interleaved\", \"base\": B}}.")
+    from ._build import _positive_int, positive_float
+
+    for key in ("kv_heads", "head_dim"):
+        if spec.get(key) is not None:
+            _positive_int(spec[key], f"the layout file {path}: {key}")
+    for key in ("norm_eps", "attention_scale"):
+        if spec.get(key) is not None or key in spec:
+            positive_float(spec[key], f"the layout file {path}: {key}")
+    if rot is not None:
+        _positive_int(rot["dims"], f"the layout file {path}: rotary.dims")
+        if "base" in rot:
+            positive_float(rot["base"], f"the layout file {path}: rotary.base")
+    if isinstance(spec.get("family"), (dict, list)):
+        raise CompositionError(f"the layout file {path}: family = {spec['family']!r} is not a string.")
     spec["_path"] = str(path)
     return spec
 

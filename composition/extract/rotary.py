@@ -41,6 +41,9 @@ _CHUNK = 1 << 16  # offsets summed per step when averaging
 
 def inverse_frequencies(dims: int, base: float, scaling: dict | None = None) -> torch.Tensor:
     """``theta_i`` for the ``dims // 2`` pairs, scaling applied. # -> [dims // 2] float32"""
+    from ._build import positive_float
+
+    positive_float(base, "the config's rotary base (rope_theta / rotary_emb_base)")
     if dims < 2 or dims % 2:
         raise CompositionError(f"the rotary width {dims} is not a positive even number.")
     inv = 1.0 / (base ** (torch.arange(0, dims, 2, dtype=torch.int64).to(torch.float32) / dims))  # [dims/2]
@@ -49,6 +52,9 @@ def inverse_frequencies(dims: int, base: float, scaling: dict | None = None) -> 
         inv = inv / float(_need(scaling, "factor"))
     elif kind == "llama3":
         inv = _llama3(inv, scaling)
+    if not torch.isfinite(inv).all() or not (inv > 0).all():
+        raise CompositionError(f"the rotary base {base!r} (with its scaling) gives frequencies that are not finite "
+                               "and positive; check the config's rope_theta / rotary_emb_base and rope_scaling.")
     return inv
 
 
@@ -73,6 +79,11 @@ def rotary_from_config(config: dict, head_dim: int, style: str = "split-half",
         params = {**scaling, **params}
     base = params.get("rope_theta", config.get("rope_theta", config.get("rotary_emb_base", 10000.0)))
     fraction = params.get("partial_rotary_factor", config.get("partial_rotary_factor", config.get("rotary_pct")))
+    from ._build import positive_float
+
+    base = positive_float(base, "the config's rotary base (rope_theta / rotary_emb_base)")
+    if fraction is not None:
+        fraction = positive_float(fraction, "the config's partial_rotary_factor / rotary_pct")
     if config.get("rotary_dim") is not None:
         dims = int(config["rotary_dim"])
     else:

@@ -127,8 +127,9 @@ class Weights:
     def scale(self) -> float:
         return self.attn_scale if self.attn_scale is not None else self.d_head**-0.5
 
-    def fingerprint(self) -> str:
-        """SHA-256 over every canonical tensor (name, shape, dtype, bytes) and the structure."""
+    def tensor_fingerprint(self) -> str:
+        """SHA-256 over every canonical tensor (name, shape, dtype, bytes) and the structure
+        (the fingerprint of scan files of format 1)."""
         h = hashlib.sha256()
         h.update(f"{self.placement}|{self.attn_scale}|{self.readout}".encode())
         for name, t in _named_tensors(self):
@@ -137,6 +138,50 @@ class Weights:
             h.update(t.view(torch.uint8).numpy().tobytes() if t.numel() else b"")
         if self.rotary is not None:
             h.update(f"rotary|{self.rotary.dims}|{self.rotary.style}".encode())
+        return h.hexdigest()
+
+    def settings(self) -> dict:
+        """Every configuration value the computation reads besides the tensors, by a plain name
+        (``activation``, ``attention norm epsilon``, ``rotary scaling``, ...). A value that differs
+        between layers is a list, one entry per layer."""
+        def per_layer(get):
+            values = [get(layer) for layer in self.layers]
+            return values[0] if all(v == values[0] for v in values) else values
+
+        def norm(n):
+            return (None, None) if n is None else (n.kind, float(n.eps))
+
+        s = {
+            "placement": self.placement,
+            "attention scale": float(self.scale),
+            "readout": self.readout,
+            "activation": per_layer(lambda l: l.mlp.activation),
+            "gated MLP": per_layer(lambda l: l.mlp.W_gate is not None),
+            "key/value heads": per_layer(lambda l: int(l.attn.kv_heads)),
+            "attention norm": per_layer(lambda l: l.attn_norm.kind),
+            "attention norm epsilon": per_layer(lambda l: float(l.attn_norm.eps)),
+            "MLP norm": per_layer(lambda l: l.mlp_norm.kind),
+            "MLP norm epsilon": per_layer(lambda l: float(l.mlp_norm.eps)),
+            "final norm": norm(self.final_norm)[0],
+            "final norm epsilon": norm(self.final_norm)[1],
+            "embedding norm": norm(self.embed_norm)[0] or "none",
+            "embedding norm epsilon": norm(self.embed_norm)[1],
+            "token-type row": self.W_type is not None,
+            "learned positions": self.W_pos is not None,
+        }
+        r = self.rotary
+        s["rotary"] = "none" if r is None else f"{r.dims} dims, {r.style}"
+        s["rotary scaling"] = "none" if r is None else str(r.scaling)
+        s["rotary frequencies"] = "none" if r is None else ",".join(f"{v:.9g}" for v in r.inv_freq.double().tolist())
+        return s
+
+    def fingerprint(self) -> str:
+        """The model fingerprint: SHA-256 over every canonical tensor and every configuration
+        value the computation reads (:meth:`settings`). Any change to either changes it."""
+        import json
+
+        h = hashlib.sha256(self.tensor_fingerprint().encode())
+        h.update(json.dumps(self.settings(), sort_keys=True).encode())
         return h.hexdigest()
 
 

@@ -35,9 +35,8 @@ Storage: the groups ``/heads`` (datasets ``[L, H, ...]``) and ``/model_space`` (
 
 from __future__ import annotations
 
+import json
 import os
-import shutil
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -48,6 +47,8 @@ import torch
 from ..errors import CompositionError
 from ..compose.factors import input_norm, writer_values
 from ..score.ranks import diagonal_midranks
+from ..store import schema
+from ..store.atomic import atomic_write, check_target, special_kind
 from ..score.stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT, HIST_BINS, LABEL_NOT_COMPUTED, labels, summarise
 from ..extract.tables import TableOptions, apply_norm, norm_linear_part, token_table
 from ..extract.weights import Weights
@@ -93,47 +94,70 @@ def head_profiles(w: Weights, table: torch.Tensor, ks=DEFAULT_K, fdr: float = DE
                   heads: list[tuple[int, int]] | None = None) -> dict[str, np.ndarray]:
     """OV diagonal statistics, eigenvalue copying score and label of every head (or of ``heads``).
 
-    # table [V, d] -> {name: [L, H, ...]}; label +1 copying, -1 suppressing, 0 neutral,
-    LABEL_NOT_COMPUTED for heads left out. Benjamini-Hochberg runs over the computed heads.
+    # table [V, d] -> {name: [L, H, ...]} (the /heads datasets of store.schema); label +1
+    copying, -1 suppressing, 0 neutral, LABEL_NOT_COMPUTED for heads left out.
+    Benjamini-Hochberg runs over the computed heads.
     """
     L, H = w.n_layers, w.n_heads
     ks = tuple(int(k) for k in ks)
     chosen = sorted(set(heads)) if heads is not None else [(l, h) for l in range(L) for h in range(H)]
+    out = schema.empty("heads", L, H, len(ks), HIST_BINS)
+    done = 0
+    for layer, in_layer in head_units(chosen):
+        index, fields = profile_layer(w, table, layer, in_layer, ks, block_rows)
+        out_sel = tuple(index.T)
+        for name, values in fields.items():
+            out[name][out_sel] = values
+        done += len(in_layer)
+        if progress:
+            progress(done, len(chosen))
+    label_heads(out, fdr, min_effect)
+    return out
+
+
+def head_units(chosen) -> list[tuple[int, tuple[int, ...]]]:
+    """The head-profile work units of a scan: ``(layer, heads of that layer)`` in layer order."""
+    layers: dict[int, list[int]] = {}
+    for l, h in sorted(set(chosen)):
+        layers.setdefault(int(l), []).append(int(h))
+    return [(l, tuple(hs)) for l, hs in sorted(layers.items())]
+
+
+def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_rows: int = 256
+                  ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """One head-profile work unit: the OV statistics of ``heads`` of ``layer``.
+
+    # table [V, d] -> (index [n, 2], {name: [n, ...]} of the /heads dtypes, done set)
+    """
+    ks = tuple(int(k) for k in ks)
     n_rows = min(w.vocab_size, w.W_U.shape[1])  # diagonal exists for t < min(V_in, V_out)
     n_keys = w.W_U.shape[1]
-    out = {
-        "top_share": np.full((L, H, len(ks)), np.nan),
-        "bottom_share": np.full((L, H, len(ks)), np.nan),
-        "mean_percentile": np.full((L, H), np.nan),
-        "histogram": np.zeros((L, H, HIST_BINS), np.int64),
-        "rows_evaluated": np.zeros((L, H), np.int64),
-        "p_value": np.full((L, H), np.nan),
-        "q_value": np.full((L, H), np.nan),
-        "eigen_copying_score": np.full((L, H), np.nan),
-        "label": np.full((L, H), LABEL_NOT_COMPUTED, np.int8),
-    }
+    fields = schema.unit_arrays("heads", len(heads), len(ks), HIST_BINS)
     rows = torch.arange(n_rows)
-    done = 0
-    for layer in sorted({l for l, _ in chosen}):
-        A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
-        for h in sorted(h for l, h in chosen if l == layer):
-            ranks = diagonal_midranks(A[h, :n_rows], B[h], rows=rows, block_rows=block_rows).numpy()  # [V]
-            s = summarise(ranks, n_keys, ks)
-            out["top_share"][layer, h] = s.top_share
-            out["bottom_share"][layer, h] = s.bottom_share
-            out["mean_percentile"][layer, h] = s.mean_percentile
-            out["histogram"][layer, h] = s.histogram
-            out["rows_evaluated"][layer, h] = s.rows
-            out["p_value"][layer, h] = s.p_value
-            out["eigen_copying_score"][layer, h] = eigen_copying_score(A[h, :n_rows], B[h, :n_rows])
-            done += 1
-            if progress:
-                progress(done, len(chosen))
-    sel = tuple(np.array(chosen).T) if chosen else (np.zeros(0, int), np.zeros(0, int))
-    lab, q = labels(out["mean_percentile"][sel], out["p_value"][sel], fdr, min_effect)
-    out["label"][sel] = lab
-    out["q_value"][sel] = q
-    return out
+    A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
+    for j, h in enumerate(heads):
+        ranks = diagonal_midranks(A[h, :n_rows], B[h], rows=rows, block_rows=block_rows).numpy()  # [V]
+        s = summarise(ranks, n_keys, ks)
+        fields["top_share"][j] = s.top_share
+        fields["bottom_share"][j] = s.bottom_share
+        fields["mean_percentile"][j] = s.mean_percentile
+        fields["histogram"][j] = s.histogram
+        fields["rows_evaluated"][j] = s.rows
+        fields["p_value"][j] = s.p_value
+        fields["eigen_copying_score"][j] = eigen_copying_score(A[h, :n_rows], B[h, :n_rows])
+        fields["done"][j] = True
+    fields.pop("label")
+    fields.pop("q_value")
+    index = np.array([[layer, h] for h in heads], dtype=np.int64).reshape(-1, 2)
+    return index, fields
+
+
+def label_heads(arrays: dict[str, np.ndarray], fdr: float, min_effect: float) -> None:
+    """Labels and q-values of the profiled heads (Benjamini-Hochberg over all of them)."""
+    done = arrays["done"]
+    lab, q = labels(arrays["mean_percentile"][done], arrays["p_value"][done], fdr, min_effect)
+    arrays["label"][done] = lab
+    arrays["q_value"][done] = q
 
 
 # ---------------------------------------------------------------------------
@@ -324,43 +348,79 @@ def projection_kernel(Q1: torch.Tensor, Q2: torch.Tensor) -> float:
     return float((Q1.T @ Q2).pow(2).sum())
 
 
+class ModelSpace:
+    """The per-layer reductions the model-space units need, built once per layer and kept."""
+
+    def __init__(self, w: Weights):
+        self.w = w
+        self._prepared: dict[int, _Prepared] = {}
+
+    def prepared(self, layer: int) -> _Prepared:
+        if layer not in self._prepared:
+            self._prepared[layer] = _prepare(layer_factors(self.w, layer))
+        return self._prepared[layer]
+
+
+def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """One model-space work unit: every score of writer layer ``lU`` against later layers.
+
+    # -> (index [[lU]], {name: [1, H, L, H] scores, [1, H] dims, [1] done})
+    Later responder layers are handled in groups of up to 64 heads, one batched product per
+    kind and group.
+    """
+    w = space.w
+    L, H, d = w.n_layers, w.n_heads, w.d_model
+    out = {}
+    for name, decl in schema.datasets("model_space").items():
+        shape = decl.shape(L, H, 0, 0)[1:]
+        out[name] = np.full((1,) + shape, decl.fill, dtype=decl.dtype)
+    mine = space.prepared(lU)
+    out["write_dim"][0] = mine.bases["out"][1]  # [H] rank of W_O
+    for kind in KINDS:
+        out[f"read_dim_{kind}"][0] = mine.bases[kind][1]
+    for group in _layer_groups(lU + 1, L, H):
+        later = [space.prepared(l) for l in group]
+        responders = _Prepared(
+            torch.cat([p.ov_norm2 for p in later]), torch.cat([p.qk_norm2 for p in later]), None,
+            {kind: torch.cat([p.responder_z[kind] for p in later]) for kind in KINDS},
+            {kind: (torch.cat([p.bases[kind][0] for p in later]), None) for kind in KINDS})
+        scores, kernels = _pair_scores(mine, responders)  # {kind: [H, len(group) H]}
+        sl = slice(group[0], group[-1] + 1)
+        for kind in KINDS:
+            out[f"{kind}_composition"][0, :, sl, :] = scores[kind].numpy().reshape(H, len(group), H)
+            out[f"projection_kernel_{kind}"][0, :, sl, :] = kernels[kind].numpy().reshape(H, len(group), H)
+            read = np.stack([p.bases[kind][1] for p in later])  # [n, H]
+            dims = np.einsum("a,lb->alb", out["write_dim"][0], read)  # [H, n, H]
+            out[f"kernel_random_mean_{kind}"][0, :, sl, :] = dims / d
+    out["done"][0] = True
+    return np.array([[lU]], dtype=np.int64), out
+
+
+def model_space_attrs(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASELINE_SEED) -> dict:
+    """The attributes of /model_space: the Gaussian baselines of the composition scores."""
+    d = w.d_model
+    base = composition_baseline(d, w.d_head, draws, seed)
+    attrs = {"baseline_draws": int(draws), "baseline_seed": int(seed), "d_model": d, "d_head": w.d_head}
+    for kind in KINDS:
+        attrs[f"baseline_{kind}_mean"], attrs[f"baseline_{kind}_sd"] = base[kind]
+    return attrs
+
+
 def model_space_scores(w: Weights, draws: int = BASELINE_DRAWS, seed: int = BASELINE_SEED
                        ) -> tuple[dict[str, np.ndarray], dict]:
     """Composition scores and projection kernels of every pair, with their baselines.
 
     # -> ({name: [L, H, L, H] or [L, H]}, attrs); pairs with responder layer <= writer
-    layer hold NaN. Per writer layer, later responder layers are handled in groups of up to
-    64 heads, one batched product per kind and group. Memory: about eight ``[H, d, dh]``
-    float64 tensors per layer (GPT-2 small: 0.45 GB).
+    layer hold NaN. Memory: about eight ``[H, d, dh]`` float64 tensors per layer
+    (GPT-2 small: 0.45 GB).
     """
-    L, H, d = w.n_layers, w.n_heads, w.d_model
-    shape = (L, H, L, H)
-    arrays = {f"{kind}_composition": np.full(shape, np.nan) for kind in KINDS}
-    arrays.update({f"projection_kernel_{kind}": np.full(shape, np.nan) for kind in KINDS})
-    arrays.update({f"kernel_random_mean_{kind}": np.full(shape, np.nan) for kind in KINDS})
-    prepared = [_prepare(layer_factors(w, layer)) for layer in range(L)]
-    arrays["write_dim"] = np.stack([p.bases["out"][1] for p in prepared])  # [L, H] rank of W_O
-    for kind in KINDS:
-        arrays[f"read_dim_{kind}"] = np.stack([p.bases[kind][1] for p in prepared])  # [L, H]
-    for lU in range(L - 1):
-        for group in _layer_groups(lU + 1, L, H):
-            later = [prepared[l] for l in group]
-            responders = _Prepared(
-                torch.cat([p.ov_norm2 for p in later]), torch.cat([p.qk_norm2 for p in later]), None,
-                {kind: torch.cat([p.responder_z[kind] for p in later]) for kind in KINDS},
-                {kind: (torch.cat([p.bases[kind][0] for p in later]), None) for kind in KINDS})
-            scores, kernels = _pair_scores(prepared[lU], responders)  # {kind: [H, len(group) H]}
-            sl = slice(group[0], group[-1] + 1)
-            for kind in KINDS:
-                arrays[f"{kind}_composition"][lU, :, sl, :] = scores[kind].numpy().reshape(H, len(group), H)
-                arrays[f"projection_kernel_{kind}"][lU, :, sl, :] = kernels[kind].numpy().reshape(H, len(group), H)
-                dims = np.einsum("a,lb->alb", arrays["write_dim"][lU], arrays[f"read_dim_{kind}"][sl])  # [H, n, H]
-                arrays[f"kernel_random_mean_{kind}"][lU, :, sl, :] = dims / d
-    base = composition_baseline(d, w.d_head, draws, seed)
-    attrs = {"baseline_draws": int(draws), "baseline_seed": int(seed), "d_model": d, "d_head": w.d_head}
-    for kind in KINDS:
-        attrs[f"baseline_{kind}_mean"], attrs[f"baseline_{kind}_sd"] = base[kind]
-    return arrays, attrs
+    arrays = schema.empty("model_space", w.n_layers, w.n_heads, 0, 0)
+    space = ModelSpace(w)
+    for lU in range(w.n_layers):
+        index, fields = model_space_unit(space, lU)
+        for name, values in fields.items():
+            arrays[name][tuple(index.T)] = values
+    return arrays, model_space_attrs(w, draws, seed)
 
 
 # ---------------------------------------------------------------------------
@@ -383,18 +443,11 @@ class HeadData:
         return float(a[f"baseline_{kind}_mean"]), float(a[f"baseline_{kind}_sd"])
 
     def table(self) -> dict[str, np.ndarray]:
-        """A tidy table of heads: one 1-D array per column (pandas-ready)."""
+        """A tidy table of heads: one 1-D array per column (pandas-ready); integer ``layer``,
+        ``head``, the ``head_label`` and ``label_word`` (store.schema.tidy)."""
         L, H = self.heads["label"].shape
-        layer, head = np.divmod(np.arange(L * H), H)
-        out = {"layer": layer, "head": head, "head_label": np.array([f"{a}.{b}" for a, b in zip(layer, head)])}
-        ks = list(self.heads_attrs.get("k", []))
-        for name, data in self.heads.items():
-            flat = data.reshape(L * H, *data.shape[2:])
-            if flat.ndim == 1:
-                out[name] = flat
-            elif name in ("top_share", "bottom_share"):
-                for j, k in enumerate(ks):
-                    out[f"{name}_{k}"] = flat[:, j]
+        rows = np.stack(np.divmod(np.arange(L * H), H), axis=1)  # [L*H, 2]
+        out = schema.tidy("heads", self.heads, self.heads_attrs.get("k", []), rows)
         out["label_word"] = np.array([HEAD_LABEL_WORDS.get(int(v), "not computed") for v in out["label"]])
         return out
 
@@ -446,14 +499,15 @@ def write_heads_file(path: str | os.PathLike, w: Weights, table: torch.Tensor, o
                      draws: int = BASELINE_DRAWS, overwrite: bool = False, progress=None,
                      heads: list[tuple[int, int]] | None = None) -> Path:
     """Compute head profiles (of ``heads``, default all) and model-space scores and write
-    them as a separate heads file."""
+    them as a separate heads file (store.atomic: mode from the umask, flushed, renamed)."""
     import h5py
 
     path = Path(path)
+    check_target(path, "heads file")
     if path.exists() and not overwrite:
         raise CompositionError(f"{path} exists already; pass --overwrite to replace it.")
     data = compute_head_data(w, table, options, ks, fdr, min_effect, draws, progress, heads=heads)
-    with _atomic(path, copy=False) as tmp:
+    with atomic_write(path, what="heads file") as tmp:
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = HEADS_FORMAT
             f.attrs["format_version"] = HEADS_FORMAT_VERSION
@@ -469,95 +523,89 @@ def add_to_scan(scan_path: str | os.PathLike, w: Weights, table: torch.Tensor | 
 
     Head profiles cover the heads of the scanned pairs (writers and responders; every head
     with ``all_heads``), so a restricted quick scan stays quick; model-space scores cover
-    every pair. Uses the scan's own token table, k, FDR and effect threshold, and refuses
-    weights whose fingerprint differs from the scan's. ``table`` may pass the already-built
-    token table. The file is rewritten atomically (copy, add, rename).
+    every pair. Uses the scan's own token table, k, FDR and effect threshold; refuses an
+    unfinished scan and weights other than the scan's (store.scanfile.require_complete,
+    check_matches). ``table`` may pass the already-built token table. The file is rewritten
+    atomically (copy, add, flush, rename; store.atomic).
     """
     import h5py
 
-    from ..store.scanfile import load_scan
+    from ..store.scanfile import check_matches, load_scan, require_complete
 
-    scan = load_scan(scan_path)
+    scan = require_complete(load_scan(scan_path), "heads --into")
+    check_matches(scan, w)
     a = scan.attrs
-    fingerprint = w.fingerprint()
-    if a.get("weights_fingerprint") not in (None, fingerprint):
-        raise CompositionError(f"the checkpoint's weights differ from those {scan_path} was computed from.")
-    position = a.get("position", "none")
-    position = None if position in (None, "none") else ("mean" if position == "mean" else int(position))
-    options = TableOptions(a.get("table", "attn0-mlp0"), position)
+    options = scan_table_options(a)
     if table is None:
         table = token_table(w, options)  # [V, d]
     idx = np.argwhere(scan.done)  # [P, 4]
     heads = None if all_heads else sorted({(int(r[0]), int(r[1])) for r in idx} | {(int(r[2]), int(r[3])) for r in idx})
-    data = compute_head_data(w, table, options, tuple(a.get("k", DEFAULT_K)), float(a.get("fdr", DEFAULT_FDR)),
-                             float(a.get("min_effect", DEFAULT_MIN_EFFECT)), draws, progress, fingerprint, heads)
+    data = compute_head_data(w, table, options, tuple(int(k) for k in scan.k), float(a.get("fdr", DEFAULT_FDR)),
+                             float(a.get("min_effect", DEFAULT_MIN_EFFECT)), draws, progress,
+                             a.get("weights_fingerprint"), heads)
     path = Path(scan_path)
-    with _atomic(path, copy=True) as tmp:
+    with atomic_write(path, copy_from=path, what="scan file") as tmp:
         with h5py.File(tmp, "a") as f:
             _write_groups(f, *data)
     return path
 
 
+def scan_table_options(attrs: dict) -> TableOptions:
+    """The token table a scan file was computed with."""
+    position = attrs.get("position", "none")
+    position = None if position in (None, "none") else ("mean" if position == "mean" else int(position))
+    return TableOptions(attrs.get("table", "attn0-mlp0"), position)
+
+
 def load_heads(path: str | os.PathLike) -> HeadData | None:
-    """Read ``/heads`` and ``/model_space`` from a scan file or a heads file (None if absent)."""
+    """Read ``/heads`` and ``/model_space`` from a scan file or a heads file (None if absent),
+    checked against the schema (store.schema)."""
     import h5py
 
     from ..store.scanfile import _unattr
 
     path = Path(path)
+    kind = special_kind(path)
+    if kind is not None:
+        raise CompositionError(f"{path} is {kind}, not a regular file.")
     if not path.is_file():
         raise CompositionError(f"file {path} does not exist.")
     try:
         with h5py.File(path, "r") as f:
             if "heads" not in f or "model_space" not in f:
                 return None
+            L, H = int(f.attrs["n_layers"]), int(f.attrs["n_heads"])
             groups = []
             for name in ("heads", "model_space"):
                 g = f[name]
-                groups.append({k: g[k][()] for k in g})
-                groups.append({k: _unattr(v) for k, v in g.attrs.items()})
-    except OSError as exc:
-        raise CompositionError(f"{path} is not a readable HDF5 file ({exc}).") from None
+                attrs = {k: _unattr(v) for k, v in g.attrs.items()}
+                n_k = len(np.atleast_1d(json.loads(attrs["k"]) if isinstance(attrs.get("k"), str) else
+                                        attrs.get("k", []))) if name == "heads" else 0
+                arrays = {}
+                for key, decl in schema.datasets(name).items():
+                    if key not in g:
+                        if key == "done":
+                            continue
+                        raise CompositionError(f"{path} has no dataset /{name}/{key}.")
+                    data = g[key]
+                    if not isinstance(data, h5py.Dataset) or data.is_virtual or data.external:
+                        raise CompositionError(f"/{name}/{key} of {path} is not a dataset stored in the file.")
+                    want = decl.shape(L, H, n_k, int(attrs.get("histogram_bins", HIST_BINS)))
+                    if data.dtype != np.dtype(decl.dtype) or data.shape != want:
+                        raise CompositionError(f"/{name}/{key} of {path} has shape {data.shape} and type {data.dtype}, "
+                                               f"not {want} and {np.dtype(decl.dtype)}.")
+                    arrays[key] = data[()]
+                groups += [arrays, attrs]
+    except CompositionError:
+        raise
+    except (OSError, KeyError, ValueError, TypeError) as exc:
+        raise CompositionError(f"{path} is not a readable heads or scan file ({str(exc).splitlines()[0] if str(exc) else exc!r}).") from None
     for attrs in (groups[1], groups[3]):
         for key, value in attrs.items():
             if isinstance(value, str) and value.startswith("["):
-                import json
-
                 attrs[key] = json.loads(value)
+    if "done" not in groups[0]:
+        groups[0]["done"] = groups[0]["label"] != LABEL_NOT_COMPUTED
+    if "done" not in groups[2]:
+        groups[2]["done"] = np.ones(groups[2]["write_dim"].shape[0], dtype=bool)
     return HeadData(path, groups[0], groups[1], groups[2], groups[3])
-
-
-class _atomic:
-    """Context manager yielding a temporary path beside ``path``, renamed onto it on success."""
-
-    def __init__(self, path: Path, copy: bool):
-        self.path, self.copy = Path(path), copy
-
-    def __enter__(self) -> str:
-        directory = self.path.parent if str(self.path.parent) else Path(".")
-        if not directory.is_dir():
-            raise CompositionError(f"output directory {directory} does not exist.")
-        try:
-            fd, self.tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".partial", dir=directory)
-            os.close(fd)
-            if self.copy:
-                shutil.copyfile(self.path, self.tmp)
-        except OSError as exc:
-            raise CompositionError(f"cannot write {self.path} ({exc.strerror}).") from None
-        return self.tmp
-
-    def __exit__(self, kind, exc, tb):
-        if kind is None:
-            try:
-                os.replace(self.tmp, self.path)
-                return False
-            except OSError as err:
-                exc = err
-                kind = OSError
-        try:
-            os.remove(self.tmp)
-        except OSError:
-            pass
-        if kind is not None and issubclass(kind, OSError):
-            raise CompositionError(f"cannot write {self.path} ({getattr(exc, 'strerror', None) or exc}).") from None
-        return False

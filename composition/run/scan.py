@@ -17,34 +17,35 @@ import datetime as _dt
 import hashlib
 import json
 import os
+import re
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Callable
 
 import numpy as np
 
 from .._version import __version__
-from ..extract import load_weights
 from ..errors import CompositionError
+from ..extract import load_weights
+from ..extract.rotary import offsets_rotation
+from ..extract.tables import TableOptions, token_table
+from ..extract.weights import Weights
+from ..compose.sides import SideFactors
+from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
+                               model_space_unit, profile_layer)
 from ..options import ScanOptions, parse_heads, result_options  # noqa: F401  (parse_heads: public API)
+from ..score.stats import HIST_BINS, labels
+from ..store import schema
+from ..store.atomic import check_target, remove_quietly, special_kind
+from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, STATUS_COMPLETE, Scan, ScanStore,
+                              ScanWriteError, empty_pairs, journal_path, load_scan, read_scan_groups,
+                              settings_change)
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
 from .units import WorkUnit, compute_unit, scan_pairs, unit_factors, work_units  # noqa: F401
-from ..extract.rotary import offsets_rotation
-from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, Scan, ScanStore, ScanWriteError,
-                       empty_pairs, journal_path, load_scan, read_scan_file)
-from ..score.stats import HIST_BINS, labels
-from ..extract.weights import Weights
 
 Head = tuple[int, int]
-
-
-@dataclass
-class ScanSummary:
-    path: Path
-    pairs: int
-    labelled: list[dict] = field(default_factory=list)
 
 
 def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, options: ScanOptions = ScanOptions(),
@@ -65,8 +66,8 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     """
     options.validate()
     out = Path(out)
-    if out.is_dir():
-        raise CompositionError(f"{out} is a directory, not a scan file path.")
+    check_target(out, "scan file")
+    check_target(journal_path(out), "journal")
     remote = cluster is not None or workers is not None
     if cluster is not None and workers is not None:
         raise CompositionError("give --cluster or --workers, not both.")
@@ -84,17 +85,21 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
         options = replace(options, rotary_offsets=(0, 0))  # the default, recorded as such
     pairs = scan_pairs(w, options)
     ks = tuple(int(k) for k in options.k)
-    units = work_units(pairs)
+    _check_model_options(w, options)
+    table = _checked_table(w, options)  # [V, d]: every model-dependent fault is found before the file exists
+    units = work_units(pairs) + final_units(w, pairs)
     attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
+    groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
+              "heads": schema.empty("heads", w.n_layers, w.n_heads, len(ks), HIST_BINS),
+              "model_space": schema.empty("model_space", w.n_layers, w.n_heads, len(ks), HIST_BINS)}
     with Guard() as guard:
         try:
             with guard.critical():
-                store = _open_store(out, attrs, empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS), overwrite)
+                store = _open_store(out, attrs, groups, overwrite, w)
             with store:
-                finishing = not store.complete
-                if finishing:
-                    _complete(store, run, guard, w, attrs, options,
+                if not store.complete:
+                    _complete(store, run, guard, w, attrs, options, table,
                               dict(checkpoint=checkpoint, cluster=cluster, workers=workers,
                                    worker_checkpoint=worker_checkpoint))
         except Interrupt as stop:
@@ -102,75 +107,170 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
                 f"interrupted by {signal_name(stop.signum)} with {run.committed_note()}; "
                 "run the same command again to resume.", stop.signum) from None
         except ScanWriteError as exc:
+            _clean_if_nothing_committed(out, run)
             raise CompositionError(
                 f"cannot write the scan file {out} ({exc.reason}); {run.committed_note(kept=True)}"
             ) from None
-    if finishing:  # head profiles and model-space scores beside the pairs (composition/heads.py)
-        from ..interpret.heads import add_to_scan
-
-        add_to_scan(out, w)
+        except MemoryError:
+            raise CompositionError(f"the scan of {out} ran out of memory; {run.committed_note(kept=True)}") from None
     return load_scan(out)
 
 
+def _check_model_options(w: Weights, options: ScanOptions) -> None:
+    """Options whose bounds depend on the model, checked before the scan file exists (--k: in scan_pairs)."""
+    position = options.position
+    if isinstance(position, int) and not isinstance(position, bool):
+        if w.W_pos is None:
+            raise CompositionError(f"--position {position}: the model has no learned position table.")
+        if not 0 <= position < w.W_pos.shape[0]:
+            raise CompositionError(f"--position {position} is outside the model's position table "
+                                   f"(positions 0-{w.W_pos.shape[0] - 1}).")
+
+
+def _checked_table(w: Weights, options: ScanOptions):
+    """The token table, refused with a sentence if it is not finite. # -> [V, d]"""
+    import torch
+
+    T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
+    if not torch.isfinite(T).all():
+        raise CompositionError(
+            f"the token table of {w.source} ({options.table}) is not finite: check the config's norm epsilon "
+            "(layer_norm_epsilon / layer_norm_eps / rms_norm_eps) and activation, and the weights' sizes.")
+    return T
+
+
+def _clean_if_nothing_committed(out: Path, run: "_Run") -> None:
+    """A fresh scan that failed before committing anything leaves no file and no journal."""
+    if run.fresh and run.units_done == 0:
+        for path in (journal_path(out), out):
+            if special_kind(path) is None:
+                remove_quietly(path)
+
+
 def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: dict, options: ScanOptions,
-              execution: dict) -> None:
-    """Compute the missing units, committing each as it comes, then label all pairs and finish."""
+              table, execution: dict) -> None:
+    """Compute the missing units (pairs, then head profiles, then model-space scores), committing
+    each as it comes, then label all pairs and heads and finish: one transaction."""
     run.begin(store)
 
-    def commit(i: int, results: dict) -> None:
-        index, fields = _unit_fields(results)
+    def commit(i: int, results) -> None:
+        group, index, fields = results if isinstance(results, tuple) else ("pairs", *_unit_fields(results))
         with guard.critical():
-            store.commit(index, fields)
+            store.commit(index, fields, group)
         run.committed(i, store.arrays)
 
     todo = run.todo()
-    if execution["cluster"] is not None or execution["workers"] is not None:
+    pair_todo = [(i, u) for i, u in todo if isinstance(u, WorkUnit)]
+    final_todo = [(i, u) for i, u in todo if not isinstance(u, WorkUnit)]
+    if pair_todo and (execution["cluster"] is not None or execution["workers"] is not None):
         from .cluster import run_units
 
         path = execution["worker_checkpoint"] or Path(execution["checkpoint"]).resolve()
-        run_units(todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
+        run_units(pair_todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
                   address=execution["cluster"], workers=execution["workers"])
-    else:
-        factors = unit_factors(w, options)
-        for i, unit in todo:
+    elif pair_todo:
+        factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets))
+        for i, unit in pair_todo:
             commit(i, compute_unit(factors, unit, options))
+    space = ModelSpace(w)
+    ks = tuple(int(k) for k in options.k)
+    for i, unit in final_todo:
+        if isinstance(unit, HeadUnit):
+            commit(i, ("heads", *profile_layer(w, table, unit.layer, unit.heads, ks, options.block_rows)))
+        else:
+            commit(i, ("model_space", *model_space_unit(space, unit.writer_layer)))
+    group_attrs = {"heads": head_attrs(w, TableOptions(options.table, options.position), ks, options.fdr,
+                                       options.min_effect, attrs["weights_fingerprint"]),
+                   "model_space": model_space_attrs(w)}
     with guard.critical():
         _label_all(store.arrays, options)
-        store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]), finished=_now()))
+        label_heads(store.groups["heads"], options.fdr, options.min_effect)
+        store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]), finished=_now()), group_attrs)
     run.finish()
 
 
-def _open_store(out: Path, attrs: dict, arrays: dict, overwrite: bool) -> ScanStore:
-    """Resume the scan file ``out`` if it exists (refusing a different scan), else start it."""
+@dataclass(frozen=True)
+class HeadUnit:
+    """Head profiles of the scanned heads of one layer (METHODS §5)."""
+
+    layer: int
+    heads: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class SpaceUnit:
+    """Model-space scores of one writer layer against every later layer (METHODS §7)."""
+
+    writer_layer: int
+
+
+def final_units(w: Weights, pairs) -> list:
+    """The head-profile units (heads of the scanned pairs) and model-space units of a scan."""
+    heads = sorted({u for u, _ in pairs} | {r for _, r in pairs})
+    return ([HeadUnit(l, hs) for l, hs in head_units(heads)]
+            + [SpaceUnit(l) for l in range(w.n_layers)])
+
+
+def _open_store(out: Path, attrs: dict, groups: dict, overwrite: bool, w: Weights) -> ScanStore:
+    """Resume the scan file ``out`` if it exists (refusing a different scan), else start it.
+
+    A complete file without /heads or /model_space (left by an earlier version, or a kill
+    in its final phase) is reopened with its pairs kept and the missing groups computed."""
     resume = out.exists() and not overwrite
     if resume:
         try:
-            old_attrs, old_arrays = read_scan_file(out)
-        except CompositionError:
-            raise CompositionError(f"{out} exists and is not a scan file of this tool; "
-                                   "pass --overwrite to replace it.") from None
-        _check_resumable(out, old_attrs, attrs)
-        for name, data in arrays.items():
-            if name not in old_arrays or old_arrays[name].shape != data.shape:
+            old_attrs, old_groups, old_group_attrs = read_scan_groups(out)
+        except CompositionError as exc:
+            if (f"{out} is not a scan file of this tool" in str(exc)) or "is not a readable" in str(exc):
+                raise CompositionError(f"{out} exists and is not a scan file of this tool; "
+                                       "pass --overwrite to replace it.") from None
+            raise CompositionError(f"cannot resume {out}: {str(exc)[:-1]}; pass --overwrite to start afresh.") from None
+        _check_resumable(out, old_attrs, attrs, w)
+        for name, data in groups["pairs"].items():
+            if old_groups["pairs"][name].shape != data.shape:
                 raise CompositionError(f"cannot resume {out}: its dataset /pairs/{name} has another shape; "
                                        "pass --overwrite to start afresh.")
+        complete = old_attrs.get("status", STATUS_COMPLETE) == STATUS_COMPLETE
+        missing = [g for g in ("heads", "model_space") if g not in old_groups]
+        if complete and missing:  # finish the groups in one transaction, the pairs kept as they are
+            kept = dict(groups, pairs=old_groups["pairs"])
+            try:
+                return ScanStore.start(out, dict(attrs, created=old_attrs.get("created", attrs["created"])), kept)
+            except ScanWriteError as exc:
+                raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); it is left as it was.") from None
+        for g in missing:
+            old_groups[g] = groups[g]
+    else:
+        if out.exists() and out.is_dir():
+            raise CompositionError(f"{out} is a directory, not a scan file path.")
     try:
-        return ScanStore.resume(out, old_attrs, old_arrays) if resume else ScanStore.start(out, attrs, arrays)
+        if resume:
+            return ScanStore.resume(out, old_attrs, old_groups, old_group_attrs)
+        return ScanStore.start(out, attrs, groups)
     except ScanWriteError as exc:
         left = ("it is left as it was" if resume else
                 "the existing file is left in place" if out.exists() else "nothing was written")
         raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); {left}.") from None
 
 
-def _check_resumable(out: Path, old: dict, new: dict) -> None:
-    """Refuse to continue a file made from another checkpoint or with other result options."""
+def _check_resumable(out: Path, old: dict, new: dict, w: Weights) -> None:
+    """Refuse to continue a file made from another checkpoint (weights or configuration) or
+    with other result options, naming what changed."""
     diffs = []
-    if old.get("weights_fingerprint") != new["weights_fingerprint"]:
-        diffs.append(f"the checkpoint differs (weights fingerprint {str(old.get('weights_fingerprint'))[:12]} "
-                     f"in the file, {new['weights_fingerprint'][:12]} now)")
+    in_progress = old.get("status", STATUS_COMPLETE) != STATUS_COMPLETE
+    version = old.get("format_version", 1)
+    if in_progress and version != FORMAT_VERSION:
+        raise CompositionError(f"cannot resume {out}: it was started by a version of the tool that writes scan "
+                               f"format {version}, which did not record the checkpoint's configuration; "
+                               "pass --overwrite to start afresh.")
+    change = settings_change(old, w)
+    if change:
+        diffs.append(change)
     try:
         old_opts = json.loads(old.get("options", "{}"))
     except (TypeError, ValueError):
+        old_opts = {}
+    if not isinstance(old_opts, dict):
         old_opts = {}
     new_opts = json.loads(new["options"])
     for key in sorted(set(old_opts) | set(new_opts)):
@@ -233,15 +333,25 @@ class _Run:
         self.units_before = self.pairs_before = self.units_done = self.pairs_done = self.entries = 0
         self.start = time.monotonic()
         self.left_in_layer: dict[int, int] = {}
+        self.fresh = False  # True once begun with nothing committed before
 
     def begin(self, store: ScanStore) -> None:
         done = store.arrays["done"]
+        heads_done = store.groups["heads"]["done"]
+        space_done = store.groups["model_space"]["done"]
         for i, unit in enumerate(self.units):
-            self.done[i] = all(done[unit.writer + (unit.responder_layer, h)] for h in unit.responder_heads)
+            if isinstance(unit, WorkUnit):
+                self.done[i] = all(done[unit.writer + (unit.responder_layer, h)] for h in unit.responder_heads)
+            elif isinstance(unit, HeadUnit):
+                self.done[i] = all(heads_done[unit.layer, h] for h in unit.heads)
+            else:
+                self.done[i] = bool(space_done[unit.writer_layer])
         self.units_before = self.units_done = sum(self.done)
         self.pairs_before = self.pairs_done = int(done.sum())
         for i, unit in self.todo():
-            self.left_in_layer[unit.responder_layer] = self.left_in_layer.get(unit.responder_layer, 0) + 1
+            if isinstance(unit, WorkUnit):
+                self.left_in_layer[unit.responder_layer] = self.left_in_layer.get(unit.responder_layer, 0) + 1
+        self.fresh = self.units_before == 0
         self.start = time.monotonic()
         if self.units_before:
             message = (f"resuming {self.out}: {self.units_before} of {len(self.units)} work units "
@@ -250,7 +360,7 @@ class _Run:
             message = f"scanning {self.n_pairs} pairs in {len(self.units)} work units into {self.out}"
         self._emit("start", message)
 
-    def todo(self) -> list[tuple[int, "WorkUnit"]]:
+    def todo(self) -> list[tuple[int, object]]:
         return [(i, u) for i, u in enumerate(self.units) if not self.done[i]]
 
     def committed(self, i: int, arrays: dict) -> None:
@@ -259,6 +369,9 @@ class _Run:
             return
         self.done[i] = True
         self.units_done += 1
+        if not isinstance(unit, WorkUnit):  # head profiles and model-space scores: the final phase
+            self._emit("unit")
+            return
         n = len(unit.responder_heads)
         self.pairs_done += n
         rows = arrays["rows_evaluated"][unit.writer + (unit.responder_layer,)][list(unit.responder_heads)]
@@ -347,6 +460,7 @@ def _attrs(w: Weights, options: ScanOptions, ks, n_pairs: int) -> dict:
         "pairs_selected": n_pairs,
         "options": json.dumps(opts, sort_keys=True),
         "weights_fingerprint": weights_fp,
+        "model_settings": json.dumps(w.settings(), sort_keys=True),
         "fingerprint": fp,
         "label_fill": -128,
         "caution": CAUTION,

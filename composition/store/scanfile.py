@@ -18,25 +18,28 @@ dropped. See docs/long-runs.md for why this is crash-safe.
 
 from __future__ import annotations
 
-import errno
 import glob
 import json
 import os
+import stat
 import struct
-import tempfile
 import time
 import uuid
 import zlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import CompositionError
-from ..score.stats import LABEL_NOT_COMPUTED
+from . import schema
+from .atomic import (WriteError, atomic_write, check_target, directory_of, fsync_dir, os_reason,  # noqa: F401
+                     remove_quietly, special_kind)
 
 FORMAT_NAME = "composition-scan"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the fingerprint covers the configuration (model_settings); /heads and /model_space are
+#                     work units of the scan (with their own done flags)
+READABLE_VERSIONS = (1, 2)
 STATUS_COMPLETE = "complete"  # attribute ``status``: every selected pair computed and labelled
 STATUS_IN_PROGRESS = "in-progress"  # units still missing; labels not computed; see the journal
 FOLD_SECONDS = 300.0  # an in-progress file is rewritten with the journal folded in this often
@@ -47,94 +50,40 @@ CAUTION = (
     "They rank candidates for causal experiments; they are not causal evidence."
 )
 
-# name -> (dtype, fill value, trailing axis: None, "k" or "bins")
-PAIR_DATASETS = {
-    "top_share": ("f8", np.nan, "k"),
-    "bottom_share": ("f8", np.nan, "k"),
-    "mean_percentile": ("f8", np.nan, None),
-    "histogram": ("i8", 0, "bins"),
-    "rows_evaluated": ("i8", 0, None),
-    "p_value": ("f8", np.nan, None),
-    "q_value": ("f8", np.nan, None),
-    "label": ("i1", LABEL_NOT_COMPUTED, None),
-    # 95 % intervals (exact hypergeometric for shares, Serfling for the mean; zero width
-    # when every row was evaluated); see composition.score.stats
-    "ci_low": ("f8", np.nan, "k"),  # top-k share
-    "ci_high": ("f8", np.nan, "k"),
-    "bottom_ci_low": ("f8", np.nan, "k"),  # bottom-k share
-    "bottom_ci_high": ("f8", np.nan, "k"),
-    "mean_ci_low": ("f8", np.nan, None),  # mean percentile
-    "mean_ci_high": ("f8", np.nan, None),
-    "done": ("?", False, None),
-    # fraction of the writer's squared write norm carried by the scan's query part (METHODS §3b):
-    # depends on the writer only; 1 for part full and for the key and value sides
-    "write_fraction": ("f8", np.nan, None),
-}
+# name -> (dtype, fill value, trailing axis: None, "k" or "bins"), derived from the schema
+PAIR_DATASETS = {d.name: (d.dtype, d.fill, d.trailing) for d in schema.datasets("pairs").values()}
 
 
 def empty_pairs(n_layers: int, n_heads: int, n_k: int, n_bins: int) -> dict[str, np.ndarray]:
     """Arrays for every ``/pairs`` dataset, filled with their not-computed values."""
-    base = (n_layers, n_heads, n_layers, n_heads)
-    extra = {None: (), "k": (n_k,), "bins": (n_bins,)}
-    return {name: np.full(base + extra[axis], fill, dtype=dtype)
-            for name, (dtype, fill, axis) in PAIR_DATASETS.items()}
+    return schema.empty("pairs", n_layers, n_heads, n_k, n_bins)
 
 
-def write_scan(path: str | os.PathLike, attrs: dict, pairs: dict[str, np.ndarray]) -> Path:
-    """Write a scan file atomically: a temporary file beside it, flushed to disk, then renamed."""
+class ScanWriteError(WriteError):
+    """Writing the scan file or its journal failed; ``reason`` says why in a few words."""
+
+    def __init__(self, path, exc: BaseException, what: str = "scan file"):
+        super().__init__(path, exc, what)
+
+
+def write_scan(path: str | os.PathLike, attrs: dict, pairs: dict[str, np.ndarray],
+               groups: dict[str, dict[str, np.ndarray]] | None = None,
+               group_attrs: dict[str, dict] | None = None) -> Path:
+    """Write a scan file atomically (store.atomic): ``/pairs`` and any further ``groups``."""
     import h5py
 
     path = Path(path)
-    directory = _directory(path)
-    if not directory.is_dir():
-        raise CompositionError(f"output directory {directory} does not exist.")
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=directory)
-        os.close(fd)
-        os.chmod(tmp, 0o666 & ~_umask())  # as an ordinary new file (mkstemp makes it private)
-    except OSError as exc:
-        raise ScanWriteError(path, exc) from None
-    try:
+    with atomic_write(path, what="scan file", error=ScanWriteError) as tmp:
         with h5py.File(tmp, "w") as f:
             for key, value in attrs.items():
                 f.attrs[key] = _attr(value)
-            group = f.create_group("pairs")
-            for name, data in pairs.items():
-                group.create_dataset(name, data=data)
-        _fsync_file(tmp)
-        os.replace(tmp, path)
-        _fsync_dir(directory)
-    except OSError as exc:
-        _remove(tmp)
-        raise ScanWriteError(path, exc) from None
-    except BaseException:
-        _remove(tmp)
-        raise
+            for name, arrays in {"pairs": pairs, **(groups or {})}.items():
+                group = f.create_group(name)
+                for key, value in (group_attrs or {}).get(name, {}).items():
+                    group.attrs[key] = _attr(value)
+                for key, data in arrays.items():
+                    group.create_dataset(key, data=data)
     return path
-
-
-class ScanWriteError(CompositionError):
-    """Writing the scan file or its journal failed; ``reason`` says why in a few words."""
-
-    def __init__(self, path, exc: BaseException):
-        self.path = Path(path)
-        self.reason = os_reason(exc)
-        super().__init__(f"cannot write the scan file {self.path} ({self.reason}).")
-
-
-def os_reason(exc: BaseException) -> str:
-    """A few plain words for an operating-system failure (h5py hides errno in its text)."""
-    code = getattr(exc, "errno", None)
-    text = str(exc)
-    if code == errno.ENOSPC or "No space left" in text or "errno = 28" in text:
-        return "no space left on the device"
-    if code == errno.EDQUOT or "Disk quota" in text:
-        return "disk quota exceeded"
-    if code == errno.EROFS or "Read-only file system" in text or "errno = 30" in text:
-        return "read-only file system"
-    if code in (errno.EACCES, errno.EPERM) or "Permission denied" in text or "errno = 13" in text:
-        return "permission denied"
-    return getattr(exc, "strerror", None) or text or type(exc).__name__
 
 
 @dataclass
@@ -144,6 +93,8 @@ class Scan:
     path: Path
     attrs: dict
     arrays: dict[str, np.ndarray]
+    groups: dict = field(default_factory=dict)  # "heads" | "model_space" -> arrays, if present
+    group_attrs: dict = field(default_factory=dict)
 
     def __getattr__(self, name):
         arrays = self.__dict__.get("arrays", {})
@@ -166,23 +117,10 @@ class Scan:
         return share / (self.k / self.attrs["keys_per_row"])
 
     def pairs(self) -> dict[str, np.ndarray]:
-        """A tidy table of the computed pairs: one 1-D array per column (pandas-ready)."""
-        idx = np.argwhere(self.arrays["done"])  # [P, 4]
-        table = {"writer_layer": idx[:, 0], "writer_head": idx[:, 1],
-                 "responder_layer": idx[:, 2], "responder_head": idx[:, 3]}
-        sel = tuple(idx.T)
-        for name, data in self.arrays.items():
-            if name == "done":
-                continue
-            values = data[sel]
-            if values.ndim == 1:
-                table[name] = values
-            elif name in ("top_share", "bottom_share"):
-                for j, k in enumerate(self.k):
-                    table[f"{name}_{k}"] = values[:, j]
-        table["writer"] = np.array([f"{a}.{b}" for a, b in idx[:, :2]])
-        table["responder"] = np.array([f"{a}.{b}" for a, b in idx[:, 2:]])
-        return table
+        """A tidy table of the computed pairs: one 1-D array per column (pandas-ready):
+        integer ``writer_layer, writer_head, responder_layer, responder_head``, the labels
+        ``writer``/``responder``, and per k the shares with their intervals (store.schema.tidy)."""
+        return schema.tidy("pairs", self.arrays, self.k, np.argwhere(self.arrays["done"]))
 
 
 def load_scan(path: str | os.PathLike, complete_only: bool = False) -> Scan:
@@ -191,38 +129,170 @@ def load_scan(path: str | os.PathLike, complete_only: bool = False) -> Scan:
     An in-progress file (``Scan.complete`` is False) comes with every unit committed so far,
     its journal merged in; its ``label`` and ``q_value`` are not computed yet (the false
     discovery rate is controlled over all pairs, so labels exist only once all are done).
-    ``complete_only=True`` refuses an in-progress file instead.
+    ``complete_only=True`` refuses an in-progress file instead. A file that is not a scan
+    of this tool (or not of a version it reads, or with datasets of the wrong shape or
+    type) is refused with a sentence.
     """
     path = Path(path)
-    attrs, arrays = read_scan_file(path)
+    attrs, groups, group_attrs = read_scan_groups(path)
     if attrs.get("status", STATUS_COMPLETE) != STATUS_COMPLETE:
         journal = journal_path(path)
-        if journal.is_file():
-            for index, fields in read_journal(journal, attrs.get("scan_id")):
-                _apply(arrays, index, fields)
-        if complete_only:
-            raise CompositionError(
-                f"{path} is an unfinished scan ({int(arrays['done'].sum())} of {attrs.get('pairs_selected', '?')} "
-                "pairs computed); run the same scan command again to finish it."
-            )
-    return Scan(path, attrs, arrays)
+        if special_kind(journal) is None and journal.exists():
+            for group, index, fields in read_journal(journal, attrs.get("scan_id")):
+                apply_unit(groups, group, index, fields, journal)
+    scan = Scan(path, attrs, groups["pairs"], {g: a for g, a in groups.items() if g != "pairs"}, group_attrs)
+    if complete_only:
+        require_complete(scan)
+    return scan
+
+
+def require_complete(scan: Scan, command: str | None = None) -> Scan:
+    """Refuse an in-progress scan with a sentence (``shortlist``, ``report``, ``heads --into``)."""
+    if not scan.complete:
+        done = int(scan.arrays["done"].sum())
+        uses = f"{command} needs a finished scan: " if command else ""
+        raise CompositionError(
+            f"{uses}{scan.path} is an unfinished scan ({done} of {scan.attrs.get('pairs_selected', '?')} "
+            "pairs computed); run the same scan command again to finish it.")
+    return scan
+
+
+def check_matches(scan: Scan, weights) -> None:
+    """Refuse ``weights`` that are not those the scan was computed from, naming what differs.
+
+    Compares the configuration values that change numbers (``model_settings``) key by key,
+    then the fingerprint (format 1 files recorded the tensors' fingerprint only).
+    """
+    diff = settings_change(scan.attrs, weights)
+    if diff:
+        raise CompositionError(f"the checkpoint does not match the scan {scan.path}: {diff}.")
+
+
+def settings_change(attrs: dict, weights) -> str | None:
+    """What differs between the model a scan file was computed from and ``weights``, or None."""
+    old_fp = str(attrs.get("weights_fingerprint"))
+    if int(attrs.get("format_version", 1)) < 2:
+        now = weights.tensor_fingerprint()
+        if old_fp != now:
+            return f"the checkpoint differs: its weights differ (weights fingerprint {old_fp[:12]} in the file, {now[:12]} now)"
+        return None
+    try:
+        old = json.loads(attrs.get("model_settings", "{}"))
+    except (TypeError, ValueError):
+        old = {}
+    new = weights.settings()
+    changed = [key for key in new if key in old and old[key] != new[key]]
+    if changed:
+        parts = [f"the checkpoint's {key} changed from {_show(old[key])} to {_show(new[key])}" for key in changed]
+        return (", ".join(parts[:-1]) + " and " + parts[-1] if len(parts) > 1 else parts[0]) + " since the scan started"
+    now = weights.fingerprint()
+    if old_fp != now:
+        return f"the checkpoint differs: its weights differ (weights fingerprint {old_fp[:12]} in the file, {now[:12]} now)"
+    return None
+
+
+def _show(value) -> str:
+    if isinstance(value, list):
+        return ",".join(str(v) for v in value)
+    return str(value)
 
 
 def read_scan_file(path: Path) -> tuple[dict, dict[str, np.ndarray]]:
     """The attributes and ``/pairs`` arrays of the HDF5 file alone (no journal)."""
+    attrs, groups, _ = read_scan_groups(path)
+    return attrs, groups["pairs"]
+
+
+def read_scan_groups(path: Path) -> tuple[dict, dict[str, dict[str, np.ndarray]], dict[str, dict]]:
+    """Attributes, every group's arrays and every group's attributes of the HDF5 file alone,
+    checked against the schema."""
     import h5py
 
-    if not path.is_file():
-        raise CompositionError(f"scan file {path} does not exist.")
+    path = Path(path)
+    kind = special_kind(path)
+    if kind is not None or not path.exists():
+        raise CompositionError(f"scan file {path} does not exist." if kind is None else
+                               f"scan file {path} is {kind}, not a regular file.")
     try:
         with h5py.File(path, "r") as f:
-            if f.attrs.get("format") != FORMAT_NAME:
+            if _text(f.attrs.get("format")) != FORMAT_NAME:
                 raise CompositionError(f"{path} is not a scan file of this tool.")
             attrs = {k: _unattr(v) for k, v in f.attrs.items()}
-            arrays = {name: f["pairs"][name][()] for name in f["pairs"]}
-    except OSError as exc:
-        raise CompositionError(f"{path} is not a readable HDF5 file ({exc}).") from None
-    return attrs, arrays
+            sizes = _sizes(path, attrs)
+            groups, group_attrs = {}, {}
+            for name in schema.GROUPS:
+                if name not in f:
+                    continue
+                g = f[name]
+                if not isinstance(g, h5py.Group):
+                    raise CompositionError(f"{path} is not a valid scan file: /{name} is not a group.")
+                groups[name] = {key: _read_dataset(path, g, name, key, sizes) for key in schema.datasets(name)
+                                if key in g or name == "pairs" or key != "done"}
+                group_attrs[name] = {k: _unattr(v) for k, v in g.attrs.items()}
+    except CompositionError:
+        raise
+    except (OSError, KeyError, ValueError, TypeError, RuntimeError) as exc:
+        raise CompositionError(f"{path} is not a readable scan file ({str(exc).splitlines()[0] if str(exc) else exc!r}).") from None
+    if "pairs" not in groups:
+        raise CompositionError(f"{path} is not a valid scan file: it has no /pairs group.")
+    for name in ("heads", "model_space"):  # files of format 1 have no done flags: complete groups
+        if name in groups and "done" not in groups[name]:
+            groups[name]["done"] = np.ones(schema.datasets(name)["done"].shape(*sizes), dtype=bool)
+    for attrs_of_group in group_attrs.values():
+        for key, value in attrs_of_group.items():
+            if isinstance(value, str) and value.startswith("["):
+                try:
+                    attrs_of_group[key] = json.loads(value)
+                except ValueError:
+                    pass
+    return attrs, groups, group_attrs
+
+
+def _sizes(path: Path, attrs: dict) -> tuple[int, int, int, int]:
+    """``(L, H, n_k, bins)`` from the file's attributes, checked."""
+    version = attrs.get("format_version", 1)
+    if not isinstance(version, int) or isinstance(version, bool) or version not in READABLE_VERSIONS:
+        raise CompositionError(f"{path} is a scan file of format version {version!r}, which this version of the "
+                               f"tool does not read (it reads versions {', '.join(map(str, READABLE_VERSIONS))}).")
+    out = []
+    for key in ("n_layers", "n_heads"):
+        value = attrs.get(key)
+        if not isinstance(value, int) or isinstance(value, bool) or not 0 < value <= 100_000:
+            raise CompositionError(f"{path} is not a valid scan file: its attribute {key} is {value!r}.")
+        out.append(value)
+    k = attrs.get("k")
+    k = list(np.atleast_1d(k)) if k is not None and not isinstance(k, str) else None
+    if not k or not all(isinstance(v, (int, np.integer)) and v > 0 for v in k):
+        raise CompositionError(f"{path} is not a valid scan file: its attribute k is {attrs.get('k')!r}.")
+    bins = attrs.get("histogram_bins", 20)
+    if not isinstance(bins, int) or not 0 < bins <= 100_000:
+        raise CompositionError(f"{path} is not a valid scan file: its attribute histogram_bins is {bins!r}.")
+    return out[0], out[1], len(k), bins
+
+
+def _read_dataset(path: Path, group, gname: str, name: str, sizes) -> np.ndarray:
+    import h5py
+
+    d = schema.datasets(gname)[name]
+    obj = group.get(name, getlink=True)
+    if obj is None:
+        raise CompositionError(f"{path} is not a valid scan file: it has no dataset /{gname}/{name}.")
+    if not isinstance(obj, h5py.HardLink):
+        raise CompositionError(f"{path} is not a valid scan file: /{gname}/{name} is a link, not a dataset.")
+    ds = group[name]
+    if not isinstance(ds, h5py.Dataset):
+        raise CompositionError(f"{path} is not a valid scan file: /{gname}/{name} is not a dataset.")
+    if ds.is_virtual or ds.external:
+        raise CompositionError(f"{path} is not a valid scan file: /{gname}/{name} stores its data outside the file.")
+    shape = d.shape(*sizes)
+    if ds.shape != shape or ds.dtype != np.dtype(d.dtype):
+        raise CompositionError(f"{path} is not a valid scan file: /{gname}/{name} has shape {ds.shape} and type "
+                               f"{ds.dtype}, not {shape} and {np.dtype(d.dtype)}.")
+    return ds[()]
+
+
+def _text(value):
+    return value.decode(errors="replace") if isinstance(value, bytes) else value
 
 
 # --- the journal of committed work units -------------------------------------------------
@@ -230,9 +300,11 @@ def read_scan_file(path: Path) -> tuple[dict, dict[str, np.ndarray]]:
 # file   := record(header) record(unit)*
 # record := b"CJ01" | u32 payload length | u32 CRC-32 of payload | payload     (little-endian)
 # header payload: JSON {"scan_id": ...}
-# unit payload  := u32 JSON length | JSON {"pairs": [[lU, hU, lR, hR], ...],
+# unit payload  := u32 JSON length | JSON {"group": "pairs" | "heads" | "model_space",
+#                                         "pairs": [[i0, i1, ...], ...],   (leading indices, [n, m])
 #                                         "fields": [[name, dtype, shape], ...]} | raw arrays
-# The arrays are C-ordered bytes, one per field, each of shape [n_pairs, ...].
+# The arrays are C-ordered bytes, one per field, each of shape [n, ...]. A record without
+# "group" (format 1) belongs to /pairs.
 
 _MAGIC = b"CJ01"
 _FRAME = struct.Struct("<4sII")
@@ -245,13 +317,20 @@ def journal_path(path: str | os.PathLike) -> Path:
 
 
 def read_journal(path: Path, scan_id: str | None):
-    """Yield ``(pair_index [n, 4], {name: [n, ...]})`` for every intact unit record.
+    """Yield ``(group, index [n, m], {name: [n, ...]})`` for every intact unit record.
 
     Reading stops at the first record that is cut short or fails its CRC (a kill in the
     middle of an append). A journal whose header names another scan yields nothing.
     """
     try:
-        data = path.read_bytes()
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK)
+        try:
+            if not stat.S_ISREG(os.fstat(fd).st_mode):
+                raise CompositionError(f"the journal {path} is not a regular file.")
+            with os.fdopen(os.dup(fd), "rb") as f:
+                data = f.read()
+        finally:
+            os.close(fd)
     except OSError as exc:
         raise CompositionError(f"cannot read the journal {path} ({os_reason(exc)}).") from None
     records, _ = _parse_journal(data, scan_id)
@@ -280,35 +359,93 @@ def _parse_journal(data: bytes, scan_id: str | None) -> tuple[list[bytes], int]:
     return payloads[1:], offset
 
 
-def _encode_unit(index: np.ndarray, fields: dict[str, np.ndarray]) -> bytes:
-    index = np.ascontiguousarray(index, dtype="<i8")  # [n, 4]
+def _encode_unit(index: np.ndarray, fields: dict[str, np.ndarray], group: str = "pairs") -> bytes:
+    index = np.ascontiguousarray(index, dtype="<i8")  # [n, m]
     arrays = {name: np.ascontiguousarray(a) for name, a in fields.items()}
-    head = json.dumps({"pairs": index.tolist(),
+    head = json.dumps({"group": group, "pairs": index.tolist(),
                        "fields": [[n, a.dtype.str, list(a.shape)] for n, a in arrays.items()]}).encode()
     return b"".join([struct.pack("<I", len(head)), head] + [a.tobytes() for a in arrays.values()])
 
 
+class JournalError(CompositionError):
+    """A journal record passed its CRC but does not fit the scan file."""
+
+
 def _decode_unit(payload: bytes, path: Path):
-    (n,) = struct.unpack_from("<I", payload, 0)
-    head = json.loads(payload[4:4 + n])
-    index = np.asarray(head["pairs"], dtype=np.int64).reshape(-1, 4)  # [n, 4]
+    """``(group, index [n, m], {name: [n, ...]})`` of one record; nonsense raises JournalError."""
+    def bad(why: str):
+        return JournalError(f"the journal {path} holds a record that passes its checksum but {why}; move the "
+                            "journal away to resume from the scan file alone, or pass --overwrite to start afresh.")
+
+    try:
+        (n,) = struct.unpack_from("<I", payload, 0)
+        head = json.loads(payload[4:4 + n])
+    except (struct.error, ValueError, UnicodeDecodeError):
+        raise bad("whose header is not readable") from None
+    if not isinstance(head, dict) or not isinstance(head.get("fields"), list):
+        raise bad("whose header is not a unit description")
+    group = head.get("group", "pairs")
+    if group not in schema.GROUPS:
+        raise bad(f"names an unknown group {group!r}")
+    try:
+        index = np.asarray(head.get("pairs"), dtype=np.int64)  # [n, m]
+    except (TypeError, ValueError, OverflowError):
+        raise bad("whose indices are not integers") from None
+    if index.ndim != 2 or index.shape[0] == 0 or index.shape[1] == 0:
+        raise bad("whose indices are not a list of index rows")
     fields, offset = {}, 4 + n
-    for name, dtype, shape in head["fields"]:
-        dt = np.dtype(dtype)
+    for item in head["fields"]:
+        if (not isinstance(item, list) or len(item) != 3 or not isinstance(item[0], str)
+                or not isinstance(item[2], list) or not all(isinstance(v, int) and v >= 0 for v in item[2])):
+            raise bad("whose field list is malformed")
+        name, dtype, shape = item
+        try:
+            dt = np.dtype(dtype)
+        except (TypeError, ValueError):
+            raise bad(f"whose field {name} has an unknown dtype") from None
+        if dt.hasobject or dt.itemsize == 0:
+            raise bad(f"whose field {name} has an unusable dtype")
         size = int(np.prod(shape, dtype=np.int64)) * dt.itemsize
-        if offset + size > len(payload):
-            raise CompositionError(f"the journal {path} holds a record that does not match its own header.")
+        if size < 0 or offset + size > len(payload):
+            raise bad("that does not match its own header")
         fields[name] = np.frombuffer(payload, dtype=dt, count=size // dt.itemsize, offset=offset).reshape(shape)
         offset += size
-    return index, fields
+    if offset != len(payload):
+        raise bad("that does not match its own header")
+    return group, index, fields
 
 
-def _apply(arrays: dict[str, np.ndarray], index: np.ndarray, fields: dict[str, np.ndarray]) -> None:
-    """Store one unit's per-pair values into the full arrays."""
-    sel = tuple(np.asarray(index).T)
+def apply_unit(groups: dict[str, dict[str, np.ndarray]], group: str, index: np.ndarray,
+               fields: dict[str, np.ndarray], path: Path | None = None) -> None:
+    """Store one unit's values into the full arrays, after checking that they fit them.
+
+    # index [n, m] leading indices; fields {name: [n, ...]} of the schema's dtypes
+    """
+    def bad(why: str):
+        where = f"the journal {path}" if path is not None else "a work unit"
+        return JournalError(f"{where} holds a record that passes its checksum but {why}; move the journal away "
+                            "to resume from the scan file alone, or pass --overwrite to start afresh.")
+
+    arrays = groups.get(group)
+    if arrays is None:
+        raise bad(f"belongs to the group /{group}, which the scan file does not have")
+    index = np.asarray(index)
+    n, m = index.shape
     for name, values in fields.items():
-        if name in arrays:
-            arrays[name][sel] = values
+        if name not in arrays:
+            raise bad(f"names a dataset {name!r} that /{group} does not have")
+        target = arrays[name]
+        if m > target.ndim:
+            raise bad(f"indexes /{group}/{name} with {m} indices")
+        if values.dtype != target.dtype or values.shape != (n,) + target.shape[m:]:
+            raise bad(f"holds values of shape {values.shape} and type {values.dtype} for /{group}/{name}")
+        if ((index < 0) | (index >= np.asarray(target.shape[:m]))).any():
+            raise bad(f"holds indices outside /{group}/{name}")
+    if "done" not in fields:
+        raise bad("marks nothing as done")
+    sel = tuple(index.T)
+    for name, values in fields.items():
+        arrays[name][sel] = values
 
 
 def _frame(payload: bytes) -> bytes:
@@ -319,25 +456,34 @@ class ScanStore:
     """The writer's side of one scan file: resume or start it, commit units, finish it.
 
     Holds an exclusive lock on the journal, so two scans never write the same file.
-    ``arrays`` always hold every committed unit.
+    ``groups`` always hold every committed unit (``arrays`` is ``groups["pairs"]``).
     """
 
-    def __init__(self, path: Path, attrs: dict, arrays: dict[str, np.ndarray], complete: bool):
-        self.path, self.attrs, self.arrays, self.complete = path, attrs, arrays, complete
+    def __init__(self, path: Path, attrs: dict, groups: dict[str, dict[str, np.ndarray]], complete: bool,
+                 group_attrs: dict | None = None):
+        self.path, self.attrs, self.groups, self.complete = path, attrs, groups, complete
+        self.group_attrs = dict(group_attrs or {})
         self.journal = journal_path(path)
         self._fd: int | None = None
         self._good = 0  # bytes of the journal known intact
         self._folded = time.monotonic()
 
+    @property
+    def arrays(self) -> dict[str, np.ndarray]:
+        return self.groups["pairs"]
+
     @classmethod
-    def start(cls, path: Path, attrs: dict, arrays: dict[str, np.ndarray]) -> "ScanStore":
+    def start(cls, path: Path, attrs: dict, groups) -> "ScanStore":
         """A new in-progress scan file (replacing any file of that name) and an empty journal."""
+        if "pairs" not in groups:  # a dict of /pairs arrays
+            groups = {"pairs": groups}
         attrs = dict(attrs, status=STATUS_IN_PROGRESS, scan_id=uuid.uuid4().hex, journal=journal_path(path).name)
-        store = cls(path, attrs, arrays, complete=False)
-        store._lock()
+        store = cls(path, attrs, groups, complete=False)
+        check_target(path, "scan file")
+        store._lock(create=True)
         try:
             store._reset_journal()
-            write_scan(path, attrs, arrays)
+            store._write()
             store._remove_stale_temporaries()
         except BaseException as exc:
             _remove(store.journal)  # ours: we hold its lock and have just emptied it
@@ -348,15 +494,17 @@ class ScanStore:
         return store
 
     @classmethod
-    def resume(cls, path: Path, attrs: dict, arrays: dict[str, np.ndarray]) -> "ScanStore":
+    def resume(cls, path: Path, attrs: dict, groups, group_attrs: dict | None = None) -> "ScanStore":
         """Continue the scan file ``path`` whose attributes and arrays were just read."""
+        if "pairs" not in groups:
+            groups = {"pairs": groups}
         complete = attrs.get("status", STATUS_COMPLETE) == STATUS_COMPLETE
-        store = cls(path, attrs, arrays, complete)
+        store = cls(path, attrs, groups, complete, group_attrs)
         if complete:
-            if store.journal.exists():
+            if special_kind(store.journal) is None and store.journal.exists():
                 store._remove_journal()  # left by a kill between the final rename and its removal
             return store
-        store._lock()
+        store._lock(create=False)
         try:
             now, _ = read_scan_file(path)  # under the lock: has another scan changed it meanwhile?
             if now.get("scan_id") != attrs.get("scan_id"):
@@ -365,10 +513,10 @@ class ScanStore:
             try:
                 data = os.pread(store._fd, os.fstat(store._fd).st_size, 0)
             except OSError as exc:
-                raise ScanWriteError(store.journal, exc) from None
+                raise ScanWriteError(store.journal, exc, "journal") from None
             payloads, good = _parse_journal(data, attrs.get("scan_id"))
             for payload in payloads:
-                _apply(arrays, *_decode_unit(payload, store.journal))
+                apply_unit(groups, *_decode_unit(payload, store.journal), store.journal)
             if good == 0:
                 store._reset_journal()
             else:
@@ -385,13 +533,13 @@ class ScanStore:
             raise
         return store
 
-    def commit(self, index: np.ndarray, fields: dict[str, np.ndarray]) -> None:
+    def commit(self, index: np.ndarray, fields: dict[str, np.ndarray], group: str = "pairs") -> None:
         """Commit one unit: append its record to the journal and flush it to disk.
 
-        # index [n, 4] pair indices, fields {name: [n, ...]}
+        # index [n, m] leading indices, fields {name: [n, ...]}
         On failure the journal is cut back to its last intact record and ScanWriteError raised.
         """
-        record = _frame(_encode_unit(index, fields))
+        record = _frame(_encode_unit(index, fields, group))
         try:
             view = memoryview(record)
             while view:
@@ -404,7 +552,7 @@ class ScanStore:
                 pass
             raise ScanWriteError(self.path, exc) from None
         self._good += len(record)
-        _apply(self.arrays, index, fields)
+        apply_unit(self.groups, group, index, fields)
         if time.monotonic() - self._folded >= FOLD_SECONDS:
             try:
                 self.fold()
@@ -414,21 +562,22 @@ class ScanStore:
     def fold(self) -> None:
         """Rewrite the in-progress HDF5 file with every committed unit and empty the journal."""
         self._folded = time.monotonic()
-        write_scan(self.path, self.attrs, self.arrays)
+        self._write()
         header = len(self._header())
         try:
             os.ftruncate(self._fd, header)
             os.fsync(self._fd)
         except OSError as exc:
-            raise ScanWriteError(self.journal, exc) from None
+            raise ScanWriteError(self.journal, exc, "journal") from None
         self._good = header
 
-    def finish(self, attrs: dict) -> None:
-        """Write the complete file (labels included in ``arrays``) and delete the journal."""
+    def finish(self, attrs: dict, group_attrs: dict | None = None) -> None:
+        """Write the complete file (labels included in the groups) and delete the journal."""
         self.attrs = dict(attrs, status=STATUS_COMPLETE)
         self.attrs.pop("scan_id", None)
         self.attrs.pop("journal", None)
-        write_scan(self.path, self.attrs, self.arrays)
+        self.group_attrs.update(group_attrs or {})
+        self._write()
         self.complete = True
         self._remove_journal()
 
@@ -444,13 +593,32 @@ class ScanStore:
         self.close()
 
     # private -------------------------------------------------------------------------------
-    def _lock(self) -> None:
+    def _write(self) -> None:
+        others = {g: a for g, a in self.groups.items() if g != "pairs"}
+        write_scan(self.path, self.attrs, self.groups["pairs"], others, self.group_attrs)
+
+    def _lock(self, create: bool) -> None:
         import fcntl
 
+        kind = special_kind(self.journal)
+        if kind is not None:
+            raise CompositionError(f"the journal path {self.journal} is {kind}; this tool writes only regular "
+                                   "files, so remove it or choose another output path.")
+        flags = os.O_RDWR | os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0) | (os.O_CREAT if create else 0)
         try:
-            self._fd = os.open(self.journal, os.O_RDWR | os.O_CREAT, 0o644)
+            self._fd = os.open(self.journal, flags, 0o666)
+        except FileNotFoundError:
+            if create:
+                raise ScanWriteError(self.path, FileNotFoundError(2, "No such file or directory")) from None
+            self._fd = None
+            self._lock(create=True)  # a journal deleted by hand: the units since the last fold are lost
+            return
         except OSError as exc:
             raise ScanWriteError(self.path, exc) from None
+        if not stat.S_ISREG(os.fstat(self._fd).st_mode):
+            self.close()
+            raise CompositionError(f"the journal path {self.journal} is not a regular file; remove it or "
+                                   "choose another output path.")
         try:
             fcntl.flock(self._fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:
@@ -469,43 +637,13 @@ class ScanStore:
 
     def _remove_journal(self) -> None:
         _remove(self.journal)
-        _fsync_dir(_directory(self.path))
+        fsync_dir(directory_of(self.path))
 
     def _remove_stale_temporaries(self) -> None:
         """Temporary files of earlier runs killed while writing (we hold the lock)."""
-        for stale in _directory(self.path).glob(f".{glob.escape(self.path.name)}.*.partial"):
-            _remove(stale)
-
-
-def _umask() -> int:
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-def _directory(path: Path) -> Path:
-    return path.parent if str(path.parent) else Path(".")
-
-
-def _fsync_file(path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def _fsync_dir(directory: Path) -> None:
-    try:
-        fd = os.open(directory, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
+        for stale in directory_of(self.path).glob(f".{glob.escape(self.path.name)}.*.partial"):
+            if special_kind(stale) is None:
+                _remove(stale)
 
 
 def _attr(value):
@@ -520,14 +658,11 @@ def _attr(value):
 
 def _unattr(value):
     if isinstance(value, bytes):
-        value = value.decode()
+        value = value.decode(errors="replace")
     if isinstance(value, np.generic):
         value = value.item()
     return value
 
 
 def _remove(path) -> None:
-    try:
-        os.remove(path)
-    except OSError:
-        pass
+    remove_quietly(path)

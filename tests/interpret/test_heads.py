@@ -258,7 +258,7 @@ def test_add_to_scan_refuses_other_weights(small):
     Common practice, no source.
     """
     w, _, _ = small
-    with pytest.raises(CompositionError, match="weights differ"):
+    with pytest.raises(CompositionError, match="does not match the scan"):
         add_to_scan(demo_scan() / "scan.h5", w)
 
 

@@ -549,3 +549,164 @@ def test_quiet_prints_no_progress(model, tmp_path):
                                        "--writers", "1"])
     assert result.exit_code == 0 and result.stderr == ""
     assert "labelled responders" in result.stdout
+
+
+# --- one transaction: head profiles and model-space scores ----------------------------------
+
+def assert_same_groups(scan_path, ref_path) -> None:
+    """Every dataset of /pairs, /heads and /model_space of two scan files is byte for byte the same."""
+    import h5py
+
+    with h5py.File(scan_path, "r") as a, h5py.File(ref_path, "r") as b:
+        for group in ("pairs", "heads", "model_space"):
+            assert sorted(a[group]) == sorted(b[group]), group
+            for name in b[group]:
+                assert a[group][name][()].tobytes() == b[group][name][()].tobytes(), f"/{group}/{name} differs"
+
+
+def wait_for_final_phase(proc, journal: Path, timeout=120.0) -> bool:
+    """Wait until the journal holds a head-profile record (the final phase has begun)."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if proc.poll() is not None:
+            return False
+        try:
+            if b'"group": "heads"' in journal.read_bytes():
+                return True
+        except FileNotFoundError:
+            pass
+        time.sleep(0.002)
+    raise AssertionError("the scan never reached its final phase")
+
+
+def test_kill_9_in_every_phase_then_resume_equals_uninterrupted_in_every_group(model, reference, tmp_path):
+    """Kill -9 in the main phase and in the final phase (head profiles, model-space scores); the
+    same command then gives a complete file whose /pairs, /heads and /model_space equal an
+    uninterrupted run's byte for byte.
+
+    Common practice, no source (crash testing of a write-ahead journal by killing the writer).
+    """
+    ref, unit_seconds = reference
+    out = tmp_path / "final.h5"
+    rng = random.Random(7)
+    proc = launch(model, out)
+    try:
+        assert wait_for_a_commit(proc, journal_path(out))
+        os.kill(proc.pid, signal.SIGKILL)
+    finally:
+        finish(proc)
+    killed_final = 0
+    for _ in range(3):
+        proc = launch(model, out)
+        try:
+            if wait_for_final_phase(proc, journal_path(out)):
+                time.sleep(rng.uniform(0.0, 0.3))
+                os.kill(proc.pid, signal.SIGKILL)
+                killed_final += 1
+        finally:
+            finish(proc)
+        scan = load_scan(out)
+        if scan.complete:
+            break
+        assert "heads" in scan.groups
+    assert killed_final >= 1
+    final = run_scan(model, out)
+    assert final.complete and not journal_path(out).exists()
+    assert_same_groups(out, ref.path)
+
+
+@pytest.mark.parametrize("signum, code", [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
+def test_signals_in_the_final_phase_exit_130_143_with_the_resume_hint(model, reference, tmp_path, signum, code):
+    """Ctrl-C and SIGTERM while head profiles and model-space scores are computed behave as in the
+    main phase: exit 128 + signal, the resume hint, never "Aborted!".
+
+    Common practice, no source.
+    """
+    ref, _ = reference
+    out = tmp_path / "final-signal.h5"
+    proc = launch(model, out)
+    try:
+        reached = wait_for_final_phase(proc, journal_path(out))
+        if reached:
+            os.kill(proc.pid, signum)
+    finally:
+        rc, _, err = finish(proc)
+    if not reached:
+        pytest.skip("the scan finished before the signal could be sent")
+    if rc == 0:
+        pytest.skip("the signal arrived after the final commit")
+    assert rc == code, err
+    assert "run the same command again to resume" in err and "Aborted" not in err and "Traceback" not in err
+    run_scan(model, out)
+    assert_same_groups(out, ref.path)
+
+
+def test_a_complete_file_without_head_groups_is_completed_by_the_same_command(model, reference, tmp_path):
+    """A complete scan file left without /heads and /model_space (an earlier version, or a kill
+    between the two writes of an earlier version) is completed by rerunning the scan.
+
+    Common practice, no source.
+    """
+    import shutil
+
+    import h5py
+
+    ref, _ = reference
+    out = tmp_path / "old.h5"
+    shutil.copyfile(ref.path, out)
+    with h5py.File(out, "a") as f:
+        del f["heads"], f["model_space"]
+    scan = run_scan(model, out)
+    assert scan.complete
+    assert_same_groups(out, ref.path)
+
+
+def test_resume_under_a_changed_activation_is_refused_naming_it(model, tmp_path):
+    """The same weights with another activation_function in config.json: the resume is refused with
+    a sentence naming the activation (the fingerprint covers the configuration).
+
+    Common practice, no source.
+    """
+    import json
+    import shutil
+
+    copy = tmp_path / "model"
+    shutil.copytree(model, copy)
+    out = tmp_path / "act.h5"
+    with pytest.raises(RuntimeError):
+        run_scan(copy, out, progress=stop_after(1))
+    config = json.loads((copy / "config.json").read_text())
+    config["activation_function"] = "relu"
+    (copy / "config.json").write_text(json.dumps(config))
+    with pytest.raises(CompositionError, match="activation changed from gelu-tanh to relu since the scan started"):
+        run_scan(copy, out)
+
+
+def test_a_symlink_planted_at_the_journal_is_refused_and_its_target_untouched(model, tmp_path):
+    """A symlink at <out>.journal never makes the scan write through it.
+
+    Common practice, no source.
+    """
+    victim = tmp_path / "victim.txt"
+    victim.write_bytes(b"precious")
+    out = tmp_path / "sym.h5"
+    journal_path(out).symlink_to(victim)
+    with pytest.raises(CompositionError, match="symbolic link"):
+        run_scan(model, out)
+    assert victim.read_bytes() == b"precious" and not out.exists()
+
+
+def test_disk_full_before_any_progress_leaves_nothing_behind(model, small_fs):
+    """A fresh scan on a full file system ends with one sentence and leaves no file, no journal and
+    no temporary file.
+
+    Common practice, no source.
+    """
+    filler = fill(small_fs)
+    try:
+        with pytest.raises(CompositionError, match="no space left") as info:
+            run_scan(model, small_fs / "nothing.h5")
+        assert "\n" not in str(info.value)
+        assert sorted(p.name for p in small_fs.iterdir()) == ["filler"]
+    finally:
+        filler.unlink()
