@@ -65,9 +65,9 @@ typedef __m512 vf;
 #define VLOAD(p) _mm512_loadu_ps(p)
 #define VSET1(x) _mm512_set1_ps(x)
 #define VFMA(a, b, c) _mm512_fmadd_ps(a, b, c)
-/* lanes above hi; lanes in [lo, hi] (two compares, the second masked by the first) */
+/* lanes above hi; then the lanes of the rest that are >= lo (the compare masked by ~gt) */
 #define GTMASK(x, h) ((uint32_t)_mm512_cmp_ps_mask(x, h, _CMP_GT_OQ))
-#define BANDMASK(x, h, l) ((uint32_t)_mm512_mask_cmp_ps_mask(_mm512_cmp_ps_mask(x, h, _CMP_LE_OQ), x, l, _CMP_GE_OQ))
+#define BANDMASK(gt, x, l) ((uint32_t)_mm512_mask_cmp_ps_mask((__mmask16)~(gt), x, l, _CMP_GE_OQ))
 #else
 #define VBITS 256
 #define W 8
@@ -78,8 +78,7 @@ typedef __m256 vf;
 #define VSET1(x) _mm256_set1_ps(x)
 #define VFMA(a, b, c) _mm256_fmadd_ps(a, b, c)
 #define GTMASK(x, h) ((uint32_t)_mm256_movemask_ps(_mm256_cmp_ps(x, h, _CMP_GT_OQ)))
-#define BANDMASK(x, h, l) ((uint32_t)_mm256_movemask_ps( \
-  _mm256_and_ps(_mm256_cmp_ps(x, h, _CMP_LE_OQ), _mm256_cmp_ps(x, l, _CMP_GE_OQ))))
+#define BANDMASK(gt, x, l) ((uint32_t)_mm256_movemask_ps(_mm256_cmp_ps(x, l, _CMP_GE_OQ)) & ~(gt))
 #endif
 #define NR (2 * W)
 #define RB (16 * MR)            /* rows packed per block */
@@ -116,8 +115,9 @@ static inline void tile(const float *restrict ap, const float *restrict bp, int6
 #pragma GCC unroll 16
   for (int i = 0; i < MR; i++) {
     vf hh = VSET1(h[i]), ll = VSET1(l[i]);
-    cnt[i] += __builtin_popcount(GTMASK(c0[i], hh)) + __builtin_popcount(GTMASK(c1[i], hh));
-    uint64_t bm = (uint64_t)BANDMASK(c0[i], hh, ll) | ((uint64_t)BANDMASK(c1[i], hh, ll) << W);
+    uint32_t g0 = GTMASK(c0[i], hh), g1 = GTMASK(c1[i], hh);
+    cnt[i] += __builtin_popcount(g0 | (g1 << W));
+    uint64_t bm = (uint64_t)BANDMASK(g0, c0[i], ll) | ((uint64_t)BANDMASK(g1, c1[i], ll) << W);
     if (__builtin_expect(bm != 0, 0)) band(s, row0 + i, col0, bm, V);
   }
 }

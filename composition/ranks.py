@@ -517,22 +517,35 @@ def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) ->
     live = np.nonzero(~zero)[0]
     if live.size == 0:
         return torch.from_numpy(ranks)
-    own_pool = prep.packed and pool is None
+    lv, ln, rv = lrows[live], lnorm[live], rows[live]  # [m', r], [m'], [m']
+    if not prep.packed:  # torch: one pass over all rows (torch threads itself)
+        ranks[live] = _ranks_of(lv, ln, rv, prep, block_rows)
+        return torch.from_numpy(ranks)
+    # compiled paths: every step per chunk of rows, the chunks shared by the threads
+    own_pool = pool is None
     if own_pool:
         pool = ThreadPoolExecutor(threads)
     try:
-        p, above, rec_rows, rec_cols, overflow = _fast_pass(lrows[live], lnorm[live], rows[live],
-                                                            prep, block_rows, pool, threads)
+        bounds = _row_chunks(live.size, threads, 96)
+        parts = pool.map(lambda i: _ranks_of(lv[bounds[i]:bounds[i + 1]], ln[bounds[i]:bounds[i + 1]],
+                                             rv[bounds[i]:bounds[i + 1]], prep, block_rows), range(len(bounds) - 1))
+        ranks[live] = np.concatenate(list(parts))
     finally:
         if own_pool:
             pool.shutdown()
+    return torch.from_numpy(ranks)
+
+
+def _ranks_of(lv: np.ndarray, lnorm: np.ndarray, rows: np.ndarray, prep: PreparedRight, block_rows: int) -> np.ndarray:
+    """Midranks of non-zero left rows: the fast pass, then float64 decisions for the band
+    records (the self entry excluded by index) and whole rows for overflowed ones.
+    # lv [k, r] float64, lnorm [k], rows [k] -> [k] float64"""
+    p, above, rec_rows, rec_cols, overflow = _fast_pass(lv, lnorm, rows, prep, block_rows)
     result = above.astype(np.float64)
-    # float64 decisions for the band records; the self entry is excluded by index
     keep = (rec_cols != p.rows[rec_rows]) & ~overflow[rec_rows]
     rec_rows, rec_cols = rec_rows[keep], rec_cols[keep]
-    lv = lrows[live]  # [m', r] left rows of the pass, in its order
     if rec_rows.size:
-        diag = exact_dot(lv, prep.exact[p.rows])  # [m']
+        diag = exact_dot(lv, prep.exact[p.rows])  # [k]
         for s in range(0, rec_rows.size, _EXACT_CHUNK):
             rr = rec_rows[s:s + _EXACT_CHUNK]
             v = exact_dot(lv[rr], prep.exact[rec_cols[s:s + _EXACT_CHUNK]])  # [M]
@@ -542,11 +555,10 @@ def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) ->
     bad = np.nonzero(overflow)[0]
     if bad.size:
         result[bad] = _exact_rows(lv[bad], prep.exact, p.rows[bad])
-    ranks[live] = result
-    return torch.from_numpy(ranks)
+    return result
 
 
-def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows, pool, threads):
+def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows):
     """Thresholds (docstring steps 2-5), then the path's pass. Returns the pass, above
     counts, band records (row position, column) and the rows whose records overflowed.
     # lrows [m, r] float64, lnorm [m], rows [m]"""
@@ -569,9 +581,9 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows, pool, thread
     T = 2 * E + 2 * G
     p = _Pass(rows, L, _round_out(d + T, True), _round_out(d - T, False))
     if prep.path == "amx-bf16x3":
-        above, rr, cc, overflow = _amx_pass(p, prep, pool, threads)
+        above, rr, cc, overflow = _amx_pass(p, prep)
     elif prep.packed:
-        above, rr, cc, overflow = _vector_pass(p, prep, pool, threads)
+        above, rr, cc, overflow = _vector_pass(p, prep)
     else:
         above, rr, cc, overflow = _torch_pass(p, prep, block_rows)
     return p, above, rr, cc, overflow
@@ -584,28 +596,14 @@ def _row_chunks(m: int, threads: int, unit: int) -> np.ndarray:
     return np.linspace(0, m, n_chunks + 1).astype(np.int64)
 
 
-def _threaded(p: _Pass, pool, bounds, call):
-    """Run ``call(a, b, above, overflow, rec) -> n`` on each row chunk in ``pool``.
-    Returns above [m] int64, the records [n, 2] int32 (global row positions), overflow [m]."""
+def _compiled_call(p: _Pass, call):
+    """One kernel call over all rows of the pass: ``call(above, overflow, rec) -> n``.
+    Returns above [m] int64, the records [n, 2] int32 (row position, column), overflow [m]."""
     m = p.rows.shape[0]
-    above = np.zeros(m, np.int64)
-    overflow = np.zeros(m, np.uint8)
-
-    def job(i):
-        a, b = int(bounds[i]), int(bounds[i + 1])
-        if b <= a:
-            return np.zeros((0, 2), np.int32)
-        rec = np.empty((4 * (b - a) + 4096, 2), np.int32)  # [cap, 2]
-        ab, ov = np.zeros(b - a, np.int64), np.zeros(b - a, np.uint8)
-        n = call(a, b, ab, ov, rec)
-        above[a:b], overflow[a:b] = ab, ov
-        out = rec[:n].copy()
-        out[:, 0] += a
-        return out
-
-    recs = list(pool.map(job, range(len(bounds) - 1)))
-    rec = np.concatenate(recs) if recs else np.zeros((0, 2), np.int32)
-    return above, rec, overflow
+    above, overflow = np.zeros(m, np.int64), np.zeros(m, np.uint8)
+    rec = np.empty((4 * m + 4096, 2), np.int32)  # [cap, 2]
+    n = call(above, overflow, rec)
+    return above, rec[:n], overflow
 
 
 def _pad_correction(above: np.ndarray, p: _Pass, n_pad: int) -> None:
@@ -615,26 +613,18 @@ def _pad_correction(above: np.ndarray, p: _Pass, n_pad: int) -> None:
         above -= n_pad * (np.float32(0.0) > p.hi)
 
 
-def _vector_pass(p: _Pass, prep: PreparedRight, pool, threads):
+def _vector_pass(p: _Pass, prep: PreparedRight):
     kern = _vector_kernel(prep.path)
-
-    def call(a, b, ab, ov, rec):
-        return _kernel.count_rows(kern, np.ascontiguousarray(p.L[a:b]), prep.data, prep.V, p.hi[a:b], p.lo[a:b],
-                                  ab, rec, ov)
-
-    above, rec, overflow = _threaded(p, pool, _row_chunks(p.rows.shape[0], threads, 96), call)
+    above, rec, overflow = _compiled_call(p, lambda ab, ov, rec: _kernel.count_rows(
+        kern, np.ascontiguousarray(p.L), prep.data, prep.V, p.hi, p.lo, ab, rec, ov))
     _pad_correction(above, p, prep.data.shape[0] * kern.NR - prep.V)
     return above, rec[:, 0].astype(np.int64), rec[:, 1].astype(np.int64), overflow.astype(bool)
 
 
-def _amx_pass(p: _Pass, prep: PreparedRight, pool, threads):
+def _amx_pass(p: _Pass, prep: PreparedRight):
     lib = _kernel.load_amx()
-
-    def call(a, b, ab, ov, rec):
-        return _kernel.count_rows_amx(lib, _kernel.pack_amx_left(p.L[a:b]), b - a, prep.data, prep.V, p.hi[a:b],
-                                      p.lo[a:b], ab, rec, ov)
-
-    above, rec, overflow = _threaded(p, pool, _row_chunks(p.rows.shape[0], threads, 128), call)
+    above, rec, overflow = _compiled_call(p, lambda ab, ov, rec: _kernel.count_rows_amx(
+        lib, _kernel.pack_amx_left(p.L), p.rows.shape[0], prep.data, prep.V, p.hi, p.lo, ab, rec, ov))
     _pad_correction(above, p, prep.data.shape[0] * _kernel.AMX_COLS - prep.V)
     return above, rec[:, 0].astype(np.int64), rec[:, 1].astype(np.int64), overflow.astype(bool)
 
