@@ -81,7 +81,7 @@ typedef __m256 vf;
 #define BANDMASK(gt, x, l) ((uint32_t)_mm256_movemask_ps(_mm256_cmp_ps(x, l, _CMP_GE_OQ)) & ~(gt))
 #endif
 #define NR (2 * W)
-#define RB (16 * MR)            /* rows packed per block */
+#define RB (32 * MR)            /* rows packed per block */
 #define CHUNK_BYTES (256 * 1024) /* right panels per chunk: this many bytes (L2) */
 
 typedef struct { int32_t *rec; int64_t cap, n; uint8_t *overflow; } sink_t;

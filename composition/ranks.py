@@ -545,7 +545,9 @@ def _ranks_of(lv: np.ndarray, lnorm: np.ndarray, rows: np.ndarray, prep: Prepare
     keep = (rec_cols != p.rows[rec_rows]) & ~overflow[rec_rows]
     rec_rows, rec_cols = rec_rows[keep], rec_cols[keep]
     if rec_rows.size:
-        diag = exact_dot(lv, prep.exact[p.rows])  # [k]
+        with_band = np.unique(rec_rows)  # diagonals only of the rows that have band records
+        diag = np.zeros(result.size)
+        diag[with_band] = exact_dot(lv[with_band], prep.exact[p.rows[with_band]])  # [k]
         for s in range(0, rec_rows.size, _EXACT_CHUNK):
             rr = rec_rows[s:s + _EXACT_CHUNK]
             v = exact_dot(lv[rr], prep.exact[rec_cols[s:s + _EXACT_CHUNK]])  # [M]
@@ -709,10 +711,13 @@ def exact_dot(a, b):
     """
     if isinstance(a, torch.Tensor):
         return torch.from_numpy(exact_dot(_as_f64(a), _as_f64(b)))
-    a, b = np.asarray(a, np.float64), np.asarray(b, np.float64)
-    acc = a[:, 0] * b[:, 0]
-    for i in range(1, a.shape[1]):
-        acc += a[:, i] * b[:, i]
+    at = np.ascontiguousarray(np.asarray(a, np.float64).T)  # [r, M]: contiguous columns
+    bt = np.ascontiguousarray(np.asarray(b, np.float64).T)
+    acc = at[0] * bt[0]
+    tmp = np.empty_like(acc)
+    for i in range(1, at.shape[0]):  # acc = (...((a0 b0 + a1 b1) + a2 b2) ...), each product rounded
+        np.multiply(at[i], bt[i], out=tmp)
+        acc += tmp
     return acc
 
 
