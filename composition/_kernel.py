@@ -22,8 +22,12 @@ kernel stores each 16 x 16 float32 tile to a 1 KiB buffer and compares it with A
 Per row both return
 
 * ``above[t]``: the entries with ``S~[t, j] > hi[t]`` (certainly above the diagonal), and
-* the band entries ``lo[t] <= S~[t, j] <= hi[t]`` as ``(row, column)`` records, which the
-  caller decides exactly in float64 (:mod:`composition.ranks`).
+* the band entries ``lo[t] <= S~[t, j] <= hi[t]``: the vector kernel decides them itself in
+  float64 (the dot of the unscaled float64 rows in index order, the arithmetic of
+  ``ranks.exact_dot``; the library is compiled with ``-ffp-contract=off`` so no product is
+  fused), adding to ``above`` and ``ties``; a row with too many band entries is flagged and
+  redone whole in float64 by the caller. The AMX kernel returns them as ``(row, column)``
+  records that the caller decides (:mod:`composition.ranks`).
 
 Loop order of the vector kernel: rows in blocks of ``RB`` (packed contiguously: the
 broadcasts of one tile come from one stream of ``MR * r`` floats, 3 KiB at r = 64), the
@@ -84,22 +88,42 @@ typedef __m256 vf;
 #define RB (32 * MR)            /* rows packed per block */
 #define CHUNK_BYTES (256 * 1024) /* right panels per chunk: this many bytes (L2) */
 
-typedef struct { int32_t *rec; int64_t cap, n; uint8_t *overflow; } sink_t;
+/* The float64 decision of band entries, in the kernel: the reference value of an entry is
+   the float64 dot of the two unscaled factor rows in index order, each product rounded
+   (compiled with -ffp-contract=off: the arithmetic of ranks.exact_dot, so duplicated tokens
+   tie exactly). The diagonal is computed the same way, once per row, when first needed. */
+typedef struct {
+  const double *L64, *R64;  /* [n][r] this call's left rows, [V][r] the right factor */
+  const int64_t *dcol;      /* [n] the row's own column (excluded by index) */
+  int64_t r, cap_row;       /* band entries per row before it is left to whole-row float64 */
+  double *d64; uint8_t *dset; int64_t *nband, *ties; uint8_t *overflow;
+} exact_t;
 
-static void put(sink_t *s, int64_t row, int64_t col) {
-  if (s->overflow[row]) return;
-  if (s->n >= s->cap) { s->overflow[row] = 1; return; }
-  s->rec[2 * s->n] = (int32_t)row; s->rec[2 * s->n + 1] = (int32_t)col; s->n++;
+static double dot64(const double *a, const double *b, int64_t r) {
+  double acc = a[0] * b[0];
+  for (int64_t k = 1; k < r; k++) { double t = a[k] * b[k]; acc += t; }
+  return acc;
 }
 
 /* band lanes ``bm`` (bit l = column col0 + l) of row ``row``; padding columns >= V dropped */
-static __attribute__((noinline)) void band(sink_t *s, int64_t row, int64_t col0, uint64_t bm, int64_t V) {
-  while (bm) { int l = __builtin_ctzll(bm); bm &= bm - 1; if (col0 + l < V) put(s, row, col0 + l); }
+static __attribute__((noinline)) void band(exact_t *e, int64_t *cnt, int64_t row, int64_t col0, uint64_t bm,
+                                           int64_t V) {
+  const double *a = e->L64 + row * e->r;
+  while (bm) {
+    int l = __builtin_ctzll(bm); bm &= bm - 1;
+    int64_t col = col0 + l;
+    if (col >= V || col == e->dcol[row] || e->overflow[row]) continue;
+    if (++e->nband[row] > e->cap_row) { e->overflow[row] = 1; continue; }
+    if (!e->dset[row]) { e->d64[row] = dot64(a, e->R64 + e->dcol[row] * e->r, e->r); e->dset[row] = 1; }
+    double v = dot64(a, e->R64 + col * e->r, e->r);
+    *cnt += v > e->d64[row];
+    e->ties[row] += v == e->d64[row];
+  }
 }
 
 /* One MR x NR tile: ap [r][MR] packed left rows, bp [r][NR] one right panel. */
 static inline void tile(const float *restrict ap, const float *restrict bp, int64_t r, const float *h,
-                        const float *l, int64_t *cnt, int64_t row0, int64_t col0, int64_t V, sink_t *s) {
+                        const float *l, int64_t *cnt, int64_t row0, int64_t col0, int64_t V, exact_t *e) {
   vf c0[MR], c1[MR];
 #pragma GCC unroll 16
   for (int i = 0; i < MR; i++) { c0[i] = VZERO(); c1[i] = VZERO(); }
@@ -118,28 +142,36 @@ static inline void tile(const float *restrict ap, const float *restrict bp, int6
     uint32_t g0 = GTMASK(c0[i], hh), g1 = GTMASK(c1[i], hh);
     cnt[i] += __builtin_popcount(g0 | (g1 << W));
     uint64_t bm = (uint64_t)BANDMASK(g0, c0[i], ll) | ((uint64_t)BANDMASK(g1, c1[i], ll) << W);
-    if (__builtin_expect(bm != 0, 0)) band(s, row0 + i, col0, bm, V);
+    if (__builtin_expect(bm != 0, 0)) band(e, cnt + i, row0 + i, col0, bm, V);
   }
 }
 
 /* out[0..3] = vector bits, float lanes, tile rows MR, tile columns NR */
 int kernel_info(int64_t *out) { out[0] = VBITS; out[1] = W; out[2] = MR; out[3] = NR; return 0; }
 
-/* Rows [0, n) of L [n][r]; P packed [np][r][NR] (columns >= V are zero); thresholds hi, lo [n].
-   above [n] is incremented; band records (row, column) go to rec [cap][2]; a row whose records
-   do not fit gets overflow[row] = 1. Returns the number of records, -1 if out of memory. */
+/* Rows [0, n) of L [n][r] (float32, scaled); P packed [np][r][NR] (columns >= V are zero);
+   thresholds hi, lo [n]. above [n] is incremented by the entries above the diagonal, ties [n]
+   by those equal to it (float64, band entries only); a row with more than cap_row band
+   entries gets overflow[row] = 1 and partial counts (the caller redoes it). L64 [n][r],
+   R64 [V][r]: the unscaled float64 factors; dcol [n]: each row's own column.
+   Returns 0, or -1 if out of memory. */
 int64_t count_rows(const float *L, int64_t n, int64_t r, const float *P, int64_t np, int64_t V,
-                   const float *hi, const float *lo, int64_t *above, int32_t *rec, int64_t cap,
-                   uint8_t *overflow) {
-  sink_t s = {rec, cap, 0, overflow};
+                   const float *hi, const float *lo, int64_t *above, int64_t *ties, uint8_t *overflow,
+                   const double *L64, const double *R64, const int64_t *dcol, int64_t cap_row) {
   float *A = aligned_alloc(64, ((sizeof(float) * RB * r + 63) / 64) * 64);
-  if (!A) return -1;
+  double *d64 = malloc(sizeof(double) * (n > 0 ? n : 1));
+  uint8_t *dset = calloc(n > 0 ? n : 1, 1);
+  int64_t *nband = calloc(n > 0 ? n : 1, sizeof(int64_t));
+  if (!A || !d64 || !dset || !nband) { free(A); free(d64); free(dset); free(nband); return -1; }
   float h[RB], l[RB];
   int64_t cnt[RB];
   int64_t cp = CHUNK_BYTES / (r * NR * (int64_t)sizeof(float));
   if (cp < 1) cp = 1;
   for (int64_t b0 = 0; b0 < n; b0 += RB) {
     int64_t nb = n - b0 < RB ? n - b0 : RB, ng = (nb + MR - 1) / MR;
+    /* the row block's view of the float64 data: row indices relative to b0 */
+    exact_t e = {L64 + b0 * r, R64, dcol + b0, r, cap_row, d64 + b0, dset + b0, nband + b0, ties + b0,
+                 overflow + b0};
     for (int64_t g = 0; g < ng; g++)  /* pack: A [ng][r][MR] */
       for (int64_t k = 0; k < r; k++)
         for (int i = 0; i < MR; i++) {
@@ -154,12 +186,12 @@ int64_t count_rows(const float *L, int64_t n, int64_t r, const float *P, int64_t
     for (int64_t p0 = 0; p0 < np; p0 += cp)
       for (int64_t g = 0; g < ng; g++)
         for (int64_t p = p0; p < np && p < p0 + cp; p++)
-          tile(A + g * r * MR, P + p * r * NR, r, h + g * MR, l + g * MR, cnt + g * MR, b0 + g * MR,
-               p * NR, V, &s);
+          tile(A + g * r * MR, P + p * r * NR, r, h + g * MR, l + g * MR, cnt + g * MR, g * MR,
+               p * NR, V, &e);
     for (int64_t t = 0; t < nb; t++) above[b0 + t] += cnt[t];
   }
-  free(A);
-  return s.n;
+  free(A); free(d64); free(dset); free(nband);
+  return 0;
 }
 
 /* The machine's vector limit: independent FMA chains at this width, enough of them to cover
@@ -298,6 +330,7 @@ def has_amx() -> bool:
 def _build(source: str, flags: list[str], tag: str) -> Path | None:
     """Compile ``source`` to a cached shared library; None when the compiler refuses."""
     cc = os.environ.get("CC", "cc")
+    flags = ["-O3", *flags, "-fno-fast-math", "-ffp-contract=off", "-shared", "-fPIC"]
     digest = hashlib.sha256((source + " ".join(flags) + cc + _cpu_key()).encode()).hexdigest()[:16]
     cache = Path(os.environ.get("COMPOSITION_CACHE", Path.home() / ".cache" / "composition"))
     so = cache / f"ranks-{tag}-{digest}.so"
@@ -309,7 +342,7 @@ def _build(source: str, flags: list[str], tag: str) -> Path | None:
             src = Path(tmp) / "kernel.c"
             src.write_text(source)
             out = Path(tmp) / "kernel.so"
-            subprocess.run([cc, "-O3", *flags, "-fno-fast-math", "-shared", "-fPIC", "-o", str(out), str(src)],
+            subprocess.run([cc, *flags, "-o", str(out), str(src)],
                            check=True, capture_output=True, timeout=120)
             os.replace(out, so)
     except (OSError, subprocess.SubprocessError):
@@ -357,7 +390,7 @@ def load(variant: str = "native") -> VectorKernel | None:
         return None
     vp, i64 = ctypes.c_void_p, ctypes.c_int64
     lib.count_rows.restype = i64
-    lib.count_rows.argtypes = [vp, i64, i64, vp, i64, i64, vp, vp, vp, vp, i64, vp]
+    lib.count_rows.argtypes = [vp, i64, i64, vp, i64, i64, vp, vp, vp, vp, vp, vp, vp, vp, i64]
     lib.fma_limit.restype = ctypes.c_double
     lib.fma_limit.argtypes = [i64]
     lib.kernel_info.argtypes = [vp]
@@ -447,18 +480,18 @@ def pack_amx_right(right3: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(full.reshape(n_panels, AMX_COLS, K // 2, 2).transpose(0, 2, 1, 3))
 
 
-def count_rows(kern: VectorKernel, L, P, V, hi, lo, above, rec, overflow) -> int:
-    """One vector-kernel call over all rows of ``L``. # L [n, r] f32, P [np, r, NR] f32, hi/lo [n] f32
+def count_rows(kern: VectorKernel, L, P, V, hi, lo, above, ties, overflow, L64, R64, dcol, cap_row: int) -> None:
+    """One vector-kernel call over all rows of ``L``, band entries decided in float64 inside.
 
-    ``above`` [n] int64 and ``overflow`` [n] uint8 are updated in place, ``rec`` [cap, 2]
-    int32 receives the band records; returns how many.
+    # L [n, r] f32, P [np, r, NR] f32, hi/lo [n] f32; above, ties [n] int64 and overflow [n]
+    # uint8 updated in place; L64 [n, r] f64, R64 [V, r] f64 (C-contiguous), dcol [n] int64
     """
     n, r = L.shape
     got = kern.lib.count_rows(L.ctypes.data, n, r, P.ctypes.data, P.shape[0], V, hi.ctypes.data, lo.ctypes.data,
-                              above.ctypes.data, rec.ctypes.data, rec.shape[0], overflow.ctypes.data)
+                              above.ctypes.data, ties.ctypes.data, overflow.ctypes.data, L64.ctypes.data,
+                              R64.ctypes.data, dcol.ctypes.data, cap_row)
     if got < 0:
-        raise MemoryError("the ranks kernel could not allocate its row buffer")
-    return int(got)
+        raise MemoryError("the ranks kernel could not allocate its row buffers")
 
 
 def count_rows_amx(lib, L, n, P, V, hi, lo, above, rec, overflow) -> int:

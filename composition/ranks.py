@@ -540,8 +540,8 @@ def _ranks_of(lv: np.ndarray, lnorm: np.ndarray, rows: np.ndarray, prep: Prepare
     """Midranks of non-zero left rows: the fast pass, then float64 decisions for the band
     records (the self entry excluded by index) and whole rows for overflowed ones.
     # lv [k, r] float64, lnorm [k], rows [k] -> [k] float64"""
-    p, above, rec_rows, rec_cols, overflow = _fast_pass(lv, lnorm, rows, prep, block_rows)
-    result = above.astype(np.float64)
+    p, above, ties, rec_rows, rec_cols, overflow = _fast_pass(lv, lnorm, rows, prep, block_rows)
+    result = above + 0.5 * ties
     keep = (rec_cols != p.rows[rec_rows]) & ~overflow[rec_rows]
     rec_rows, rec_cols = rec_rows[keep], rec_cols[keep]
     if rec_rows.size:
@@ -561,9 +561,9 @@ def _ranks_of(lv: np.ndarray, lnorm: np.ndarray, rows: np.ndarray, prep: Prepare
 
 
 def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows):
-    """Thresholds (docstring steps 2-5), then the path's pass. Returns the pass, above
-    counts, band records (row position, column) and the rows whose records overflowed.
-    # lrows [m, r] float64, lnorm [m], rows [m]"""
+    """Thresholds (docstring steps 2-5), then the path's pass. Returns the pass, the counts
+    above and tied (float64 decisions the pass made itself), band records left to decide
+    (row position, column) and the rows to redo whole. # lrows [m, r] float64, lnorm [m], rows [m]"""
     m, r = lrows.shape
     e = _pow2_exponents(lnorm)  # [m]
     x = np.ldexp(lrows, -e[:, None])  # [m, r] exact scaling
@@ -582,13 +582,15 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows):
         d = bf16x3_dot(L, bf16x3_right(*split_bf16(yd32)))  # [m]
     T = 2 * E + 2 * G
     p = _Pass(rows, L, _round_out(d + T, True), _round_out(d - T, False))
+    ties = np.zeros(m, np.int64)
     if prep.path == "amx-bf16x3":
         above, rr, cc, overflow = _amx_pass(p, prep)
     elif prep.packed:
-        above, rr, cc, overflow = _vector_pass(p, prep)
+        above, ties, overflow = _vector_pass(p, prep, lrows)
+        rr = cc = np.zeros(0, np.int64)
     else:
         above, rr, cc, overflow = _torch_pass(p, prep, block_rows)
-    return p, above, rr, cc, overflow
+    return p, above, ties, rr, cc, overflow
 
 
 def _row_chunks(m: int, threads: int, unit: int) -> np.ndarray:
@@ -615,12 +617,17 @@ def _pad_correction(above: np.ndarray, p: _Pass, n_pad: int) -> None:
         above -= n_pad * (np.float32(0.0) > p.hi)
 
 
-def _vector_pass(p: _Pass, prep: PreparedRight):
+def _vector_pass(p: _Pass, prep: PreparedRight, lrows: np.ndarray):
+    """The vector kernel, band entries decided inside in float64. # lrows [m, r] float64 unscaled
+    Returns above [m] int64, ties [m] int64, overflow [m] bool (rows to redo whole)."""
     kern = _vector_kernel(prep.path)
-    above, rec, overflow = _compiled_call(p, lambda ab, ov, rec: _kernel.count_rows(
-        kern, np.ascontiguousarray(p.L), prep.data, prep.V, p.hi, p.lo, ab, rec, ov))
+    m = p.rows.shape[0]
+    above, ties, overflow = np.zeros(m, np.int64), np.zeros(m, np.int64), np.zeros(m, np.uint8)
+    cap_row = 256 + prep.V // 64  # beyond this a row's band is cheaper as one float64 row product
+    _kernel.count_rows(kern, np.ascontiguousarray(p.L), prep.data, prep.V, p.hi, p.lo, above, ties, overflow,
+                       np.ascontiguousarray(lrows), prep.exact, np.ascontiguousarray(p.rows, np.int64), cap_row)
     _pad_correction(above, p, prep.data.shape[0] * kern.NR - prep.V)
-    return above, rec[:, 0].astype(np.int64), rec[:, 1].astype(np.int64), overflow.astype(bool)
+    return above, ties, overflow.astype(bool)
 
 
 def _amx_pass(p: _Pass, prep: PreparedRight):

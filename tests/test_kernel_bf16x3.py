@@ -126,7 +126,7 @@ def test_band_is_wider_than_fp32_but_still_small():
     for path in ("torch-fp32", "torch-bf16x3"):
         prep = ranks.prepare_right(right, path=path)
         lnorm = np.linalg.norm(left, axis=1)
-        p, _, rr, _, _ = ranks._fast_pass(left, lnorm, np.arange(400), prep, 256)
+        p, _, _, rr, _, _ = ranks._fast_pass(left, lnorm, np.arange(400), prep, 256)
         counts[path] = rr.size
     assert counts["torch-bf16x3"] >= counts["torch-fp32"]
     assert counts["torch-bf16x3"] < 0.01 * 400 * 400
