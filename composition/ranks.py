@@ -68,14 +68,16 @@ summation order, with or without fused multiply-add, has error at most
    ``|l_x| Lmax + |X| Dmax + |dx| Y`` with ``Lmax = max_j |l_y,j|``, ``Dmax = max_j |dy_j|``,
    ``|X| <= |h_x| + |l_x|``. Products of two bfloat16 numbers (8-bit significands) are exact
    in float32; summing the ``3r`` products in float32 in any order adds at most
-   ``gamma_3r(u) sum|terms| <= gamma_3r(u) (|h_x| + |l_x|) M``, ``M = max_j (|h_y,j| + |l_y,j|)``.
+   ``gamma_3r(u') sum|terms| <= gamma_3r(u') (|h_x| + |l_x|) M``, ``M = max_j (|h_y,j| + |l_y,j|)``,
+   with ``u' = 2^-23``: twice the round-to-nearest unit, so the bound holds for any faithful
+   rounding of the matrix unit's accumulator (nearest or towards zero), which we do not rely on.
    AMX flushes bfloat16 subnormal inputs and float32 subnormal results to zero: at most
    ``6 r 2^-126`` more, inside ``eta`` for every width the gamma bound admits. So
 
-       E_t = |l_x| Lmax + (|h_x| + |l_x|) Dmax + |dx_t| Y + gamma_3r(u) (|h_x| + |l_x|) M + eta,
+       E_t = |l_x| Lmax + (|h_x| + |l_x|) Dmax + |dx_t| Y + gamma_3r(2u) (|h_x| + |l_x|) M + eta,
 
    and ``T_t = 2 E_t + 2 G_t`` as in 4. With ``|l| ~ 2^-8 |x|`` and ``|dx| <= 2^-16 |x|`` the
-   band is about 4 x 2^-16 wide relative to ``|x| Y``: some 15 times the float32 band at
+   band is about 5 x 2^-16 wide relative to ``|x| Y``: some 20 times the float32 band at
    ``r = 64``, still a tiny share of a row for real factors.
 
 Every bound above is evaluated in float64 from the actual norms and inflated by
@@ -153,7 +155,7 @@ def kernel_available() -> bool:
 # paths
 
 
-_amx_state = {"checked": False, "ok": False}
+_amx_state = {"checked": False, "ok": False, "why": ""}
 _AMX_UNDER_TEST = False  # set by the self-check itself, in its own process
 
 
@@ -180,6 +182,7 @@ def _amx_checked() -> bool:
         return _amx_state["ok"]
     _amx_state["checked"] = True
     if _kernel.load_amx() is None:
+        _amx_state["why"] = _kernel.amx_status()
         return False
     so = _kernel.amx_library_path()
     stamp = Path(str(so) + ".selfcheck-ok") if so is not None else None
@@ -196,7 +199,7 @@ def _amx_checked() -> bool:
     else:
         warnings.warn(f"the AMX ranks path failed its self-check and is disabled ({said}); "
                       "the vector kernel runs instead, with the same ranks.", RuntimeWarning, stacklevel=2)
-    _amx_state["ok"] = ok
+    _amx_state["ok"], _amx_state["why"] = ok, "" if ok else f"its self-check failed: {said}"
     return ok
 
 
@@ -226,8 +229,8 @@ def resolve_path(precision: str = "auto", device: str = "cpu", engine: str = "au
     if precision in ("auto", "bf16x3") and "amx-bf16x3" in paths:
         return "amx-bf16x3"
     if precision == "bf16x3":
-        warnings.warn(f"--precision bf16x3 cannot run here ({_kernel.amx_status() if not _amx_state['ok'] else ''}"
-                      "); the fastest fp32 path runs instead, with the same ranks.", RuntimeWarning, stacklevel=2)
+        warnings.warn(f"--precision bf16x3 cannot run here ({_amx_state['why']}); the fastest fp32 path runs "
+                      "instead, with the same ranks.", RuntimeWarning, stacklevel=2)
     for p in ("avx512-fp32", "avx2-fp32"):
         if p in paths:
             return p
@@ -299,12 +302,13 @@ def bf16x3_right_constants(y: np.ndarray, h: np.ndarray, l: np.ndarray) -> Bf16x
 
 def bf16x3_bounds(x: np.ndarray, h: np.ndarray, l: np.ndarray, c: Bf16x3Right) -> np.ndarray:
     """Per-row ``E_t`` of step 5: every computed ``h_x.h_y + h_x.l_y + l_x.h_y`` (float32 sum
-    of exact products, any order, subnormals flushed or not) lies within ``E_t`` of ``x_t.y_j``.
+    of exact products, any order, any faithful rounding, subnormals flushed or not) lies
+    within ``E_t`` of ``x_t.y_j``.
     # x [m, r] float64 scaled rows, h, l [m, r] their split -> [m] float64"""
     r = x.shape[1]
     hn, ln = _row_norms(h) * _SAFE, _row_norms(l) * _SAFE
     dx = _row_norms(x - (h.astype(np.float64) + l.astype(np.float64))) * _SAFE
-    g3 = _gamma(3 * r, _U32)
+    g3 = _gamma(3 * r, 2 * _U32)  # any faithful rounding of the float32 accumulator
     return (ln * c.Lmax + (hn + ln) * c.Dmax + dx * c.Y + g3 * (hn + ln) * c.M) * _SAFE + _ETA
 
 

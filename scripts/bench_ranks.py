@@ -59,13 +59,28 @@ def _rate(fn, entries_per_call: float, seconds: float) -> float:
     return calls * entries_per_call / spent
 
 
+def _best_rate(fn, entries_per_call: float, seconds: float) -> float:
+    """The fastest call of those that fit in ``seconds`` (at least 3): on cores shared with
+    other jobs the best call is what the code can do, the mean is what the neighbours let it."""
+    fn()  # warm up
+    best, spent, calls = 0.0, 0.0, 0
+    while spent < seconds or calls < 3:
+        t = time.perf_counter()
+        fn()
+        dt = time.perf_counter() - t
+        spent += dt
+        calls += 1
+        best = max(best, entries_per_call / dt)
+    return best
+
+
 def mm_rate(R32: torch.Tensor, seconds: float) -> float:
     """torch.mm of [256, 64] x [64, V]: the same tiles as the kernel, the whole key matrix per
     call, output preallocated (the multiply alone: no comparison, no count). # R32 [V, 64]"""
     L = torch.randn(256, DH)
     Rt = R32.T.contiguous()  # [64, V]
     out = torch.empty(256, V)
-    return _rate(lambda: torch.mm(L, Rt, out=out), 256 * V, seconds)
+    return _best_rate(lambda: torch.mm(L, Rt, out=out), 256 * V, seconds)
 
 
 def full_block_rate(L32: torch.Tensor, R32: torch.Tensor, seconds: float) -> float:
@@ -83,7 +98,7 @@ def full_block_rate(L32: torch.Tensor, R32: torch.Tensor, seconds: float) -> flo
 def path_rate(left, prep, rows: int, seconds: float, threads: int) -> float:
     """End to end (scaling, the fast pass, the float64 recheck) on ``rows`` rows."""
     r = np.arange(rows)
-    return _rate(lambda: ranks.midranks_batch([left], [prep], r, threads=threads), rows * V, seconds)
+    return _best_rate(lambda: ranks.midranks_batch([left], [prep], r, threads=threads), rows * V, seconds)
 
 
 def kernel_section(args, sec: float) -> None:
@@ -111,7 +126,8 @@ def kernel_section(args, sec: float) -> None:
               f"(= {lim * DH / 1e9:.1f} G lane-FMA/s / {DH})")
     limit = limits.get(k.bits) if k else None
     rows = 2048 if args.quick else 4096
-    print(f"\nG entries/s at V = {V}, dh = {DH} (Gaussian factors; entries = rows x V; end to end)")
+    print(f"\nG entries/s at V = {V}, dh = {DH} (Gaussian factors; entries = rows x V; end to end;"
+          " best call of each run, like the limit: best of 3)")
     print(f"  {'path':<22}{'1 thread':>10}{'2 threads':>11}{'2t / 1t':>9}{'1t / limit':>12}")
     res = {}
     threads = torch.get_num_threads()
