@@ -530,7 +530,7 @@ def _midranks_one(left, prep: PreparedRight, rows, block_rows, pool, threads) ->
     if own_pool:
         pool = ThreadPoolExecutor(threads)
     try:
-        bounds = _row_chunks(live.size, threads, 96)
+        bounds = _row_chunks(live.size, threads)
         parts = pool.map(lambda i: _ranks_of(lv[bounds[i]:bounds[i + 1]], ln[bounds[i]:bounds[i + 1]],
                                              rv[bounds[i]:bounds[i + 1]], prep, block_rows), range(len(bounds) - 1))
         ranks[live] = np.concatenate(list(parts))
@@ -597,10 +597,11 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows):
     return p, above, ties, rr, cc, overflow
 
 
-def _row_chunks(m: int, threads: int, unit: int) -> np.ndarray:
-    """Chunk bounds: about 4 chunks per thread (the last ones even out uneven progress),
-    none smaller than ``unit`` rows unless there are fewer rows. # -> [n_chunks + 1]"""
-    n_chunks = max(1, min(4 * threads, -(-m // unit)))
+def _row_chunks(m: int, threads: int) -> np.ndarray:
+    """Chunk bounds: at least one chunk per thread (small samples use every core), up to four
+    per thread for large ones (the last chunks even out uneven progress on shared cores), no
+    chunk under 48 rows nor, while there are at most 4 per thread, under 768. # -> [n_chunks + 1]"""
+    n_chunks = max(1, min(-(-m // 48), max(threads, min(4 * threads, -(-m // 768)))))
     return np.linspace(0, m, n_chunks + 1).astype(np.int64)
 
 
