@@ -101,9 +101,20 @@ import torch
 from . import _kernel
 from .errors import CompositionError
 
-# --precision names valid on this machine (bf16x3 only where the processor lists AMX)
-PRECISIONS = ("auto", "fp32") + (("bf16x3",) if _kernel.has_amx() else ())
 ALIASES = {"bf16-checked": "auto"}  # removed precisions still accepted, and what they mean now
+
+
+class _Names(tuple):
+    """The precision names (iteration, ``--help``, ``click.Choice``) that also answer ``in``
+    for the aliases, so callers that validate with ``precision in PRECISIONS`` keep
+    accepting a removed name; :func:`check_precision` maps it."""
+
+    def __contains__(self, name) -> bool:
+        return tuple.__contains__(self, ALIASES.get(name, name))
+
+
+# --precision names valid on this machine (bf16x3 only where the processor lists AMX)
+PRECISIONS = _Names(("auto", "fp32") + (("bf16x3",) if _kernel.has_amx() else ()))
 DEVICES = ("cpu", "cuda")
 ENGINES = ("auto", "kernel", "torch")
 PATHS = ("amx-bf16x3", "avx512-fp32", "avx2-fp32", "torch-fp32", "torch-bf16x3")  # every path there is

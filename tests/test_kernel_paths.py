@@ -153,3 +153,12 @@ def test_amx_selfcheck_passes_here():
     """Common practice, no source: the built-in self-check (run in a child process) passes."""
     ok, said = ranks._amx_selfcheck_run()
     assert ok, said
+
+
+def test_removed_bf16_checked_is_accepted_where_precision_is_validated():
+    """Common practice, no source: callers that validate with `in PRECISIONS` (the scan
+    options) accept the removed name, which is not listed among the choices."""
+    assert "bf16-checked" in ranks.PRECISIONS
+    assert "bf16-checked" not in list(ranks.PRECISIONS)
+    assert ranks.check_precision("bf16-checked") == "auto"
+    assert "fp64" not in ranks.PRECISIONS
