@@ -92,7 +92,7 @@ def full_block_rate(L32: torch.Tensor, R32: torch.Tensor, seconds: float) -> flo
         d = S.gather(1, idx[:, None])
         (S > d).sum(1)
         (S == d).sum(1)
-    return _rate(run, 256 * V, seconds)
+    return _best_rate(run, 256 * V, seconds)
 
 
 def path_rate(left, prep, rows: int, seconds: float, threads: int) -> float:
