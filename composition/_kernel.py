@@ -503,9 +503,9 @@ def count_rows_amx(lib, L, n, P, V, hi, lo, above, rec, overflow) -> int:
     return int(got)
 
 
-def fma_limit_rate(kern: VectorKernel, seconds: float = 0.3, r: int = 64) -> float:
+def fma_limit_rate(kern: VectorKernel, seconds: float = 0.3, r: int = 64, runs: int = 3) -> float:
     """The vector limit in entries/s at head width ``r``: independent FMAs per second x lanes / r
-    (an entry of S needs r multiply-adds), best of three runs of about ``seconds / 3``."""
+    (an entry of S needs r multiply-adds), best of ``runs`` runs of about ``seconds / 10`` each."""
     import time
 
     it = 1 << 16
@@ -516,7 +516,7 @@ def fma_limit_rate(kern: VectorKernel, seconds: float = 0.3, r: int = 64) -> flo
             break
         it *= 4
     best = 0.0
-    for _ in range(3):
+    for _ in range(runs):
         t = time.perf_counter()
         lane_fmas = kern.lib.fma_limit(it)
         best = max(best, lane_fmas / (time.perf_counter() - t))
