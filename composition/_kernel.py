@@ -26,8 +26,8 @@ Per row both return
   float64 (the dot of the unscaled float64 rows in index order, the arithmetic of
   ``ranks.exact_dot``; the library is compiled with ``-ffp-contract=off`` so no product is
   fused), adding to ``above`` and ``ties``; a row with too many band entries is flagged and
-  redone whole in float64 by the caller. The AMX kernel returns them as ``(row, column)``
-  records that the caller decides (:mod:`composition.ranks`).
+  redone whole in float64 by the caller (:mod:`composition.ranks`). The AMX kernel does the
+  same with the same code.
 
 Loop order of the vector kernel: rows in blocks of ``RB`` (packed contiguously: the
 broadcasts of one tile come from one stream of ``MR * r`` floats, 3 KiB at r = 64), the
@@ -235,36 +235,57 @@ _AMX_SOURCE = r"""
 #define XFEATURE_XTILEDATA 18
 
 typedef struct { uint8_t palette, start; uint8_t pad[14]; uint16_t colsb[16]; uint8_t rows[16]; } __attribute__((packed)) tilecfg_t;
-typedef struct { int32_t *rec; int64_t cap, n; uint8_t *overflow; } sink_t;
-
 /* 0 when the OS grants this process the AMX tile state */
 int amx_init(void) { return (int)syscall(SYS_arch_prctl, ARCH_REQ_XCOMP_PERM, XFEATURE_XTILEDATA); }
 
-static void put(sink_t *s, int64_t row, int64_t col) {
-  if (s->overflow[row]) return;
-  if (s->n >= s->cap) { s->overflow[row] = 1; return; }
-  s->rec[2 * s->n] = (int32_t)row; s->rec[2 * s->n + 1] = (int32_t)col; s->n++;
+/* float64 decisions of band entries: the same code as in the vector kernel (see there) */
+typedef struct {
+  const double *L64, *R64; const int64_t *dcol; int64_t r, cap_row;
+  double *d64; uint8_t *dset; int64_t *nband, *ties, *above; uint8_t *overflow;
+} exact_t;
+
+static double dot64(const double *a, const double *b, int64_t r) {
+  double acc = a[0] * b[0];
+  for (int64_t k = 1; k < r; k++) { double t = a[k] * b[k]; acc += t; }
+  return acc;
+}
+
+static void decide(exact_t *e, int64_t row, int64_t col) {
+  if (col == e->dcol[row] || e->overflow[row]) return;
+  if (++e->nband[row] > e->cap_row) { e->overflow[row] = 1; return; }
+  const double *a = e->L64 + row * e->r;
+  if (!e->dset[row]) { e->d64[row] = dot64(a, e->R64 + e->dcol[row] * e->r, e->r); e->dset[row] = 1; }
+  double v = dot64(a, e->R64 + col * e->r, e->r);
+  e->above[row] += v > e->d64[row];
+  e->ties[row] += v == e->d64[row];
 }
 
 /* compare a stored 16 x 16 tile (rows row0.., columns col0..) with the rows' thresholds */
-static void epilogue(const float *c, const float *hi, const float *lo, int64_t *above, int64_t row0,
-                     int64_t n, int64_t col0, int64_t V, sink_t *s) {
+static void epilogue(const float *c, const float *hi, const float *lo, int64_t row0, int64_t n,
+                     int64_t col0, int64_t V, exact_t *e) {
   for (int i = 0; i < 16 && row0 + i < n; i++) {
     __m512 x = _mm512_loadu_ps(c + 16 * i);
     __m512 hh = _mm512_set1_ps(hi[row0 + i]), ll = _mm512_set1_ps(lo[row0 + i]);
-    above[row0 + i] += __builtin_popcount((uint32_t)_mm512_cmp_ps_mask(x, hh, _CMP_GT_OQ));
-    uint32_t bm = _mm512_mask_cmp_ps_mask(_mm512_cmp_ps_mask(x, hh, _CMP_LE_OQ), x, ll, _CMP_GE_OQ);
-    while (bm) { int l = __builtin_ctz(bm); bm &= bm - 1; if (col0 + l < V) put(s, row0 + i, col0 + l); }
+    __mmask16 gt = _mm512_cmp_ps_mask(x, hh, _CMP_GT_OQ);
+    e->above[row0 + i] += __builtin_popcount((uint32_t)gt);
+    uint32_t bm = _mm512_mask_cmp_ps_mask((__mmask16)~gt, x, ll, _CMP_GE_OQ);
+    while (bm) { int l = __builtin_ctz(bm); bm &= bm - 1; if (col0 + l < V) decide(e, row0 + i, col0 + l); }
   }
 }
 
 /* Rows [0, n) of left [n32][K] (n32 = n rounded up to 32), right [np][K/2][32][2]; hi, lo [n];
-   above [n] incremented; records as in the vector kernel. Returns the records, -1 on failure. */
+   above, ties [n] incremented, overflow [n] set, L64 [n][r], R64 [V][r], dcol [n] as in the
+   vector kernel. Returns 0, -1 on bad arguments or no memory. */
 int64_t count_rows_amx(const uint16_t *left, int64_t n, int64_t K, const uint16_t *right, int64_t np,
-                       int64_t V, const float *hi, const float *lo, int64_t *above, int32_t *rec,
-                       int64_t cap, uint8_t *overflow) {
+                       int64_t V, const float *hi, const float *lo, int64_t *above, int64_t *ties,
+                       uint8_t *overflow, const double *L64, const double *R64, const int64_t *dcol,
+                       int64_t r, int64_t cap_row) {
   if (K % 32) return -1;
-  sink_t s = {rec, cap, 0, overflow};
+  double *d64 = malloc(sizeof(double) * (n > 0 ? n : 1));
+  uint8_t *dset = calloc(n > 0 ? n : 1, 1);
+  int64_t *nband = calloc(n > 0 ? n : 1, sizeof(int64_t));
+  if (!d64 || !dset || !nband) { free(d64); free(dset); free(nband); return -1; }
+  exact_t e = {L64, R64, dcol, r, cap_row, d64, dset, nband, ties, above, overflow};
   tilecfg_t cfg; memset(&cfg, 0, sizeof cfg);
   cfg.palette = 1;
   for (int t = 0; t < 8; t++) { cfg.rows[t] = 16; cfg.colsb[t] = 64; }
@@ -286,14 +307,15 @@ int64_t count_rows_amx(const uint16_t *left, int64_t n, int64_t K, const uint16_
       }
       _tile_stored(0, c[0], 64); _tile_stored(1, c[1], 64);
       _tile_stored(2, c[2], 64); _tile_stored(3, c[3], 64);
-      epilogue(c[0], hi, lo, above, r0, n, p * 32, V, &s);
-      epilogue(c[1], hi, lo, above, r0, n, p * 32 + 16, V, &s);
-      epilogue(c[2], hi, lo, above, r0 + 16, n, p * 32, V, &s);
-      epilogue(c[3], hi, lo, above, r0 + 16, n, p * 32 + 16, V, &s);
+      epilogue(c[0], hi, lo, r0, n, p * 32, V, &e);
+      epilogue(c[1], hi, lo, r0, n, p * 32 + 16, V, &e);
+      epilogue(c[2], hi, lo, r0 + 16, n, p * 32, V, &e);
+      epilogue(c[3], hi, lo, r0 + 16, n, p * 32 + 16, V, &e);
     }
   }
   _tile_release();
-  return s.n;
+  free(d64); free(dset); free(nband);
+  return 0;
 }
 """
 
@@ -430,7 +452,7 @@ def load_amx():
         return None
     vp, i64 = ctypes.c_void_p, ctypes.c_int64
     lib.count_rows_amx.restype = i64
-    lib.count_rows_amx.argtypes = [vp, i64, i64, vp, i64, i64, vp, vp, vp, vp, i64, vp]
+    lib.count_rows_amx.argtypes = [vp, i64, i64, vp, i64, i64, vp, vp, vp, vp, vp, vp, vp, vp, i64, i64]
     _amx["lib"], _amx["why"] = lib, "available"
     return lib
 
@@ -494,13 +516,15 @@ def count_rows(kern: VectorKernel, L, P, V, hi, lo, above, ties, overflow, L64, 
         raise MemoryError("the ranks kernel could not allocate its row buffers")
 
 
-def count_rows_amx(lib, L, n, P, V, hi, lo, above, rec, overflow) -> int:
-    """One AMX call. # L [n32, K] uint16 (first n rows real), P [np, K/2, 32, 2] uint16, hi/lo [n] f32"""
+def count_rows_amx(lib, L, n, P, V, hi, lo, above, ties, overflow, L64, R64, dcol, cap_row: int) -> None:
+    """One AMX call, band entries decided inside in float64 as in :func:`count_rows`.
+    # L [n32, K] uint16 (first n rows real), P [np, K/2, 32, 2] uint16, hi/lo [n] f32,
+    # above/ties [n] int64, overflow [n] uint8, L64 [n, r] f64, R64 [V, r] f64, dcol [n] int64"""
     got = lib.count_rows_amx(L.ctypes.data, n, L.shape[1], P.ctypes.data, P.shape[0], V, hi.ctypes.data,
-                             lo.ctypes.data, above.ctypes.data, rec.ctypes.data, rec.shape[0], overflow.ctypes.data)
+                             lo.ctypes.data, above.ctypes.data, ties.ctypes.data, overflow.ctypes.data,
+                             L64.ctypes.data, R64.ctypes.data, dcol.ctypes.data, L64.shape[1], cap_row)
     if got < 0:
-        raise MemoryError("the AMX ranks kernel refused its arguments")
-    return int(got)
+        raise MemoryError("the AMX ranks kernel refused its arguments or could not allocate")
 
 
 def fma_limit_rate(kern: VectorKernel, seconds: float = 0.3, r: int = 64, runs: int = 3) -> float:

@@ -598,10 +598,8 @@ def _fast_pass(lrows, lnorm, rows, prep: PreparedRight, block_rows):
     T = 2 * E + 2 * G
     p = _Pass(rows, L, _round_out(d + T, True), _round_out(d - T, False))
     ties = np.zeros(m, np.int64)
-    if prep.path == "amx-bf16x3":
-        above, rr, cc, overflow = _amx_pass(p, prep)
-    elif prep.packed:
-        above, ties, overflow = _vector_pass(p, prep, lrows)
+    if prep.packed:  # the compiled kernels decide their band themselves
+        above, ties, overflow = (_amx_pass if prep.path == "amx-bf16x3" else _vector_pass)(p, prep, lrows)
         rr = cc = np.zeros(0, np.int64)
     else:
         above, rr, cc, overflow = _torch_pass(p, prep, block_rows)
@@ -616,21 +614,17 @@ def _row_chunks(m: int, threads: int) -> np.ndarray:
     return np.linspace(0, m, n_chunks + 1).astype(np.int64)
 
 
-def _compiled_call(p: _Pass, call):
-    """One kernel call over all rows of the pass: ``call(above, overflow, rec) -> n``.
-    Returns above [m] int64, the records [n, 2] int32 (row position, column), overflow [m]."""
-    m = p.rows.shape[0]
-    above, overflow = np.zeros(m, np.int64), np.zeros(m, np.uint8)
-    rec = np.empty((4 * m + 4096, 2), np.int32)  # [cap, 2]
-    n = call(above, overflow, rec)
-    return above, rec[:n], overflow
-
-
 def _pad_correction(above: np.ndarray, p: _Pass, n_pad: int) -> None:
     """Padding columns of the last panel are zero vectors, their dot exactly 0: the pass
     counted them only where it was sure, i.e. where 0 > hi. # above [m] in place"""
     if n_pad:
         above -= n_pad * (np.float32(0.0) > p.hi)
+
+
+def _cap_row(V: int) -> int:
+    """Band entries per row that the kernels decide one by one; beyond it a row is cheaper
+    as one float64 row product (:func:`_exact_rows`)."""
+    return 256 + V // 64
 
 
 def _vector_pass(p: _Pass, prep: PreparedRight, lrows: np.ndarray):
@@ -639,19 +633,23 @@ def _vector_pass(p: _Pass, prep: PreparedRight, lrows: np.ndarray):
     kern = _vector_kernel(prep.path)
     m = p.rows.shape[0]
     above, ties, overflow = np.zeros(m, np.int64), np.zeros(m, np.int64), np.zeros(m, np.uint8)
-    cap_row = 256 + prep.V // 64  # beyond this a row's band is cheaper as one float64 row product
     _kernel.count_rows(kern, np.ascontiguousarray(p.L), prep.data, prep.V, p.hi, p.lo, above, ties, overflow,
-                       np.ascontiguousarray(lrows), prep.exact, np.ascontiguousarray(p.rows, np.int64), cap_row)
+                       np.ascontiguousarray(lrows), prep.exact, np.ascontiguousarray(p.rows, np.int64),
+                       _cap_row(prep.V))
     _pad_correction(above, p, prep.data.shape[0] * kern.NR - prep.V)
     return above, ties, overflow.astype(bool)
 
 
-def _amx_pass(p: _Pass, prep: PreparedRight):
+def _amx_pass(p: _Pass, prep: PreparedRight, lrows: np.ndarray):
+    """The AMX kernel (split-bf16 products), band entries decided inside in float64, as above."""
     lib = _kernel.load_amx()
-    above, rec, overflow = _compiled_call(p, lambda ab, ov, rec: _kernel.count_rows_amx(
-        lib, _kernel.pack_amx_left(p.L), p.rows.shape[0], prep.data, prep.V, p.hi, p.lo, ab, rec, ov))
+    m = p.rows.shape[0]
+    above, ties, overflow = np.zeros(m, np.int64), np.zeros(m, np.int64), np.zeros(m, np.uint8)
+    _kernel.count_rows_amx(lib, _kernel.pack_amx_left(p.L), m, prep.data, prep.V, p.hi, p.lo, above, ties,
+                           overflow, np.ascontiguousarray(lrows), prep.exact, np.ascontiguousarray(p.rows, np.int64),
+                           _cap_row(prep.V))
     _pad_correction(above, p, prep.data.shape[0] * _kernel.AMX_COLS - prep.V)
-    return above, rec[:, 0].astype(np.int64), rec[:, 1].astype(np.int64), overflow.astype(bool)
+    return above, ties, overflow.astype(bool)
 
 
 def _torch_pass(p: _Pass, prep: PreparedRight, block_rows):
