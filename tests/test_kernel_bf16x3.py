@@ -130,3 +130,40 @@ def test_band_is_wider_than_fp32_but_still_small():
         counts[path] = rr.size
     assert counts["torch-bf16x3"] >= counts["torch-fp32"]
     assert counts["torch-bf16x3"] < 0.01 * 400 * 400
+
+
+def _bits_to_f32(u16: np.ndarray) -> np.ndarray:
+    return (u16.astype(np.uint32) << np.uint32(16)).view(np.float32)
+
+
+def test_amx_packing_read_as_the_tile_loads_read_it_gives_the_tripled_product():
+    """Common practice, no source (Intel SDM, TDPBF16PS: C[m][n] += sum_k2 A[m][2k2+i] B[k2][n][i]).
+
+    The packed left [n32, K] and right [np, K/2, 32, 2] arrays, read with the offsets and
+    strides of count_rows_amx's tile loads (A: rows of K bf16 at k; B: 16 pair-rows of
+    128 bytes at k*32 (+32 for columns 16-31)), give [h,h,l] . [h,l,h] for every entry.
+    This checks the layout the AMX code relies on without AMX hardware."""
+    from composition import _kernel
+
+    rng = np.random.default_rng(6)
+    n, V, r = 37, 70, 64  # neither a multiple of 32
+    x, y = _unit_rows(rng, n, r), _unit_rows(rng, V, r)
+    L3 = ranks.bf16x3_left(*ranks.split_bf16(x.astype(np.float32)))  # [n, 3r]
+    R3 = ranks.bf16x3_right(*ranks.split_bf16(y.astype(np.float32)))  # [V, 3r]
+    Lp, Pp = _kernel.pack_amx_left(L3), _kernel.pack_amx_right(R3)
+    K = Lp.shape[1]
+    assert K % 32 == 0 and Lp.shape[0] % 32 == 0 and Pp.shape[1:] == (K // 2, 32, 2)
+    A = _bits_to_f32(Lp).astype(np.float64)  # [n32, K]
+    out = np.zeros((Lp.shape[0], Pp.shape[0] * 32))
+    for p in range(Pp.shape[0]):
+        flat = Pp[p].reshape(-1)  # the panel as memory, uint16
+        for k in range(0, K, 32):
+            a = A[:, k:k + 32].reshape(-1, 16, 2)  # tile rows: 16 pairs along K
+            for half in (0, 1):
+                base = k * 32 + half * 32  # elements; stride 128 bytes = 64 elements
+                tile = np.stack([flat[base + i * 64: base + i * 64 + 32] for i in range(16)])  # [16, 32]
+                b = _bits_to_f32(tile).astype(np.float64).reshape(16, 16, 2)  # [k2, column, pair]
+                out[:, p * 32 + half * 16: p * 32 + half * 16 + 16] += np.einsum("mkp,knp->mn", a, b)
+    want = L3.astype(np.float64) @ R3.astype(np.float64).T  # [n, V]
+    np.testing.assert_allclose(out[:n, :V], want, rtol=0, atol=1e-12)
+    assert not out[n:].any() and not out[:, V:].any()  # padding rows and columns are zero

@@ -162,3 +162,11 @@ def test_removed_bf16_checked_is_accepted_where_precision_is_validated():
     assert "bf16-checked" not in list(ranks.PRECISIONS)
     assert ranks.check_precision("bf16-checked") == "auto"
     assert "fp64" not in ranks.PRECISIONS
+
+
+@pytest.mark.skipif(_kernel.has_amx(), reason="this processor has AMX")
+def test_selfcheck_child_process_reports_a_missing_amx():
+    """Common practice, no source: the self-check runs in a child process and, without AMX,
+    fails with the reason instead of crashing."""
+    ok, said = ranks._amx_selfcheck_run()
+    assert not ok and "AMX is not available" in said
