@@ -242,8 +242,8 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="shorter timings (noisier)")
     ap.add_argument("--skip-model", action="store_true", help="kernel rates only")
     ap.add_argument("--cpu-time", action="store_true",
-                    help="rates per CPU second of this process (robust on busy shared cores; the 2-thread "
-                         "column then shows parallel efficiency x 2 only if nothing serialises)")
+                    help="rates per CPU second of this process (robust on busy shared cores); the 2-thread "
+                         "column is then per CPU second too: equal to 1 thread means no parallel overhead")
     args = ap.parse_args()
     if args.cpu_time:
         global CLOCK
