@@ -43,6 +43,7 @@ keyed by the source text, the flags and the processor's flags.
 from __future__ import annotations
 
 import ctypes
+import functools
 import hashlib
 import os
 import platform
@@ -324,12 +325,14 @@ CLOCK = time.perf_counter  # the clock of fma_limit_rate (the benchmark may use 
 AMX_ROWS, AMX_COLS, AMX_K = 32, 32, 32  # rows and columns per AMX block, K granularity (bf16)
 
 
-def _cpu_flags() -> set[str]:
+@functools.lru_cache(maxsize=1)
+def _cpu_flags() -> frozenset[str]:
+    """The processor's flags from /proc/cpuinfo (read once)."""
     try:
         line = next((ln for ln in Path("/proc/cpuinfo").read_text().splitlines() if ln.startswith("flags")), "")
     except OSError:
         line = ""
-    return set(line.split(":", 1)[-1].split())
+    return frozenset(line.split(":", 1)[-1].split())
 
 
 def _cpu_key() -> str:
