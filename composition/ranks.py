@@ -51,7 +51,9 @@ summation order, with or without fused multiply-add, has error at most
 4. Decision. If ``s~_tj > s~_tt + T_t`` with ``T_t = 2 E_t + 2 G_t``, then
    ``x_t.y_j - x_t.y_t > 2 G_t`` and the reference has ``S[t, j] > S[t, t]``; likewise below
    ``s~_tt - T_t``. Everything in ``[s~_tt - T_t, s~_tt + T_t]`` is the band, decided by
-   ``exact_dot``. The thresholds are rounded outwards to float32. The diagonal ``s~_tt``
+   ``exact_dot`` (the compiled kernels evaluate it themselves, in C with the same
+   arithmetic: index order, every product rounded, no fused multiply-add). The thresholds
+   are rounded outwards to float32. The diagonal ``s~_tt``
    may come from a separately computed product: its own entry is then within ``2 E_t`` of
    it, always in the band, and excluded by index, never by value.
 5. ``bf16x3`` (:func:`split_bf16`, :func:`bf16x3_bounds`). Split ``v = fl32(x)`` as
