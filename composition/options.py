@@ -21,7 +21,7 @@ from .compose import sides
 from .errors import CompositionError
 from .extract import FAMILIES
 from .extract.tables import TABLES
-from .score.ranks import DEVICES, PRECISIONS, check_device
+from .score.ranks import DEVICES, PRECISIONS, check_device, check_precision
 from .score.sampling import DEFAULT_FIRST_ROWS, Sampling
 from .score.stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT
 
@@ -195,7 +195,7 @@ class ScanOptions:
     family: str | None = None  # reader override (not a result option: the weights fingerprint covers it)
     layout: str | None = None  # layout file for an unknown family (likewise)
     # how the ranks are computed (never changes a number: not in the fingerprint)
-    precision: str = "fp32"  # fp32 | bf16-checked
+    precision: str = "auto"  # auto | fp32 | bf16x3 (where AMX is): composition.score.ranks.PRECISIONS
     device: str = "cpu"  # cpu | cuda
     engine: str = "auto"  # auto | kernel | torch
     # which rows are evaluated (in the fingerprint when sampling)
@@ -219,7 +219,7 @@ class ScanOptions:
         fdr(self.fdr)
         min_effect(self.min_effect)
         check_offsets(self.rotary_offsets)
-        member("--precision", self.precision, PRECISIONS)
+        check_precision(self.precision)
         check_device(self.device)
         seed(self.seed)
         rows(self.rows)
@@ -352,8 +352,10 @@ _OPTIONS = {
         "--query-part", type=_choice("--query-part", sides.QUERY_PARTS), default="full", show_default=True,
         help="Query side only: the whole write, its projection on the token's unembedding direction, or the rest."),
     "precision": click.option(
-        "--precision", type=_choice("--precision", PRECISIONS), default="fp32", show_default=True,
-        help="Fast-pass arithmetic; both give the exact float64 midranks (bf16-checked rechecks a proven band)."),
+        "--precision", type=_Parsed("|".join(PRECISIONS), check_precision), default="auto", show_default=True,
+        help="Fast-pass arithmetic: auto (the fastest exact path on this processor), fp32 (vector kernel), "
+             "bf16x3 (split-bfloat16 on AMX matrix units, where the processor has them). Every path gives "
+             "the same float64 midranks; the scan file records which ran (docs/kernels.md)."),
     "device": click.option(
         "--device", type=_choice("--device", DEVICES), default="cpu", show_default=True, help="Where the fast pass runs."),
     "rows": click.option(

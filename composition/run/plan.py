@@ -33,7 +33,7 @@ from ..compose import sides
 from ..compose.sides import Product, SideFactors
 from ..extract import load_weights
 from ..extract.rotary import offsets_rotation
-from ..score.ranks import RowProduct, kernel_available, kernel_rate_entries, prepare_right
+from ..score.ranks import RowProduct, kernel_rate_entries, prepare_right, resolve_path
 from ..score.sampling import expected_rows
 from ..score.stats import summarise_many
 from ..extract.tables import TableOptions, token_table
@@ -192,13 +192,12 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
         + len({h[0] for h in profiled}) * t_values * scale,
     }
     f64 = 8 * V
-    per_pair = V * dh * 8 + rows * dh * (8 + 8 + 4 + 4 + (8 if options.precision == "bf16-checked" else 0)) \
-        + (1 << 15) * dh * 8 * 3
-    prepared = H * V * dh * 4 * (2 if options.precision == "bf16-checked" else 1)
+    path = resolve_path(options.precision, options.device, options.engine)
+    per_pair = V * dh * 8 + rows * dh * (8 + 8 + 4 + 4) + (1 << 15) * dh * 8 * 3
+    prepared = H * V * (3 * dh * 2 if path.endswith("bf16x3") else dh * 4)  # packed right factors of a layer
     table_work = 4096 * (4 * d) * 8 * 3
     peak = rss_loaded + f64 * d + 2 * H * f64 * dh + max(prepared + per_pair, table_work)
-    engine = "fused C kernel" if (options.engine != "torch" and options.device == "cpu" and kernel_available()) \
-        else "plain torch"
+    engine = path
     return Plan(str(getattr(w, "source", checkpoint)), V, dh, n_pairs, len(units), rows, rows_most, looks_used,
                 entries, rate, engine, options.precision, side.title, seconds, int(peak))
 

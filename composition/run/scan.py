@@ -35,6 +35,7 @@ from ..compose.sides import SideFactors
 from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
                                model_space_unit, profile_layer)
 from ..options import ScanOptions, parse_heads, result_options  # noqa: F401  (parse_heads: public API)
+from ..score.ranks import resolve_path
 from ..score.stats import HIST_BINS, labels
 from ..store import schema
 from ..store.atomic import check_target, remove_quietly, special_kind
@@ -459,6 +460,7 @@ def _attrs(w: Weights, options: ScanOptions, ks, n_pairs: int) -> dict:
         "responders": options.responders or "all",
         "pairs_selected": n_pairs,
         "options": json.dumps(opts, sort_keys=True),
+        "ranks_path": resolve_path(options.precision, options.device, options.engine),  # never changes a number
         "weights_fingerprint": weights_fp,
         "model_settings": json.dumps(w.settings(), sort_keys=True),
         "fingerprint": fp,

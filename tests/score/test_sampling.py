@@ -180,13 +180,19 @@ def _labels_at(scan, pairs):
 
 def test_demo_planted_labels_unchanged_under_every_precision_and_sampling(demo_weights, tmp_path):
     """Recovery of what was planted in the invented demo model (composition.demo.PLANTED_PAIRS):
-    the labels of a restricted selection are the same under fp32 and bf16-checked, both
-    engines, a fixed row sample and a sequential sample."""
-    modes = [dict(), dict(precision="bf16-checked"), dict(engine="torch", rows=1000), dict(rows=300, seed=1),
-             dict(until_ci=0.05, precision="bf16-checked", seed=2)]
+    the labels of a restricted selection are the same under every ranks path this machine has
+    (composition.score.ranks.available_paths: vector kernel, AMX where present, torch), a fixed
+    row sample and a sequential sample; the scan file records the path that ran."""
+    by_path = {"amx-bf16x3": dict(precision="bf16x3"), "avx512-fp32": dict(precision="fp32", engine="kernel"),
+               "avx2-fp32": dict(precision="fp32", engine="kernel"), "torch-fp32": dict(precision="fp32", engine="torch")}
+    paths = [p for p in ranks.available_paths() if p in by_path]
+    modes = [dict()] + [by_path[p] for p in paths] + [dict(engine="torch", rows=1000), dict(rows=300, seed=1),
+                                                     dict(until_ci=0.05, seed=2)]
     reference = None
     for i, mode in enumerate(modes):
         scan = run_scan(demo_weights, tmp_path / f"s{i}.h5", ScanOptions(**SELECTION, **mode))
+        assert scan.attrs["ranks_path"] == ranks.resolve_path(**{k: v for k, v in mode.items()
+                                                               if k in ("precision", "engine")})
         done = scan.done
         lab = scan.label[done]
         if reference is None:
@@ -260,7 +266,7 @@ def test_scan_ranks_equal_the_dense_oracle(tmp_path):
     T = og.token_table(sd64, cfg)
     V = cfg["vocab_size"]
     order = np.random.default_rng(5).permutation(V)
-    for precision in ("fp32", "bf16-checked"):
+    for precision in ("auto", "fp32"):
         exact = run_scan(tmp_path, tmp_path / f"e-{precision}.h5",
                          ScanOptions(writers="0.1,0.2", responders="1.0,1.3", k=(1, 5), precision=precision))
         sampled = run_scan(tmp_path, tmp_path / f"s-{precision}.h5",
