@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from composition.store import schema
 from composition.store.scanfile import CAUTION, FORMAT_NAME, FORMAT_VERSION, empty_pairs, write_scan
 
 K = (1, 10)
@@ -76,10 +77,12 @@ def write_synthetic_scan(path: Path, L: int = 12, H: int = 12, V: int = 4096, ro
              "caution": CAUTION, "status": "complete"}
     write_scan(path, attrs, arrays)
 
-    heads = {"mean_percentile": 0.5 + rng.normal(0, 0.05, (L, H)),
+    heads = schema.empty("heads", L, H, len(K), BINS)  # every dataset the store's schema declares
+    heads.update({"mean_percentile": 0.5 + rng.normal(0, 0.05, (L, H)),
              "top_share": rng.uniform(0, 0.01, (L, H, len(K))), "bottom_share": rng.uniform(0, 0.01, (L, H, len(K))),
              "histogram": rng.integers(0, 100, (L, H, BINS)), "rows_evaluated": np.full((L, H), V),
-             "p_value": rng.uniform(0, 1, (L, H)), "eigen_copying_score": rng.uniform(-1, 1, (L, H))}
+             "p_value": rng.uniform(0, 1, (L, H)), "eigen_copying_score": rng.uniform(-1, 1, (L, H)),
+             "done": np.ones((L, H), bool)})
     heads["mean_percentile"][rng.random((L, H)) < 0.3] = 0.85
     heads["mean_percentile"][rng.random((L, H)) < 0.2] = 0.15
     heads["q_value"] = np.where(np.abs(heads["mean_percentile"] - 0.5) > 0.2, 1e-5, 0.5)
@@ -87,8 +90,10 @@ def write_synthetic_scan(path: Path, L: int = 12, H: int = 12, V: int = 4096, ro
     heads_attrs = {"table": "attn0-mlp0", "position": "none", "k": json.dumps(list(K)), "fdr": 0.05,
                    "min_effect": 0.05, "keys_per_row": V, "histogram_bins": BINS, "weights_fingerprint": "synthetic",
                    "label_fill": -128}
-    ms = {}
+    ms = schema.empty("model_space", L, H, len(K), BINS)
+    ms.update(write_dim=np.full((L, H), 64), done=np.ones(L, bool))
     for kind in ("q", "k", "v"):
+        ms[f"read_dim_{kind}"] = np.full((L, H), 64)
         c = np.full((L, H, L, H), np.nan)
         c[idx] = np.abs(rng.normal(0.125, 0.02, P))
         c[idx[0][5], idx[1][5], idx[2][5], idx[3][5]] = 0.9  # one outlier washes out a linear scale
