@@ -107,3 +107,17 @@ def test_references_need_the_query_side_full_write():
         ScanOptions(references=True, side="key").validate()
     with pytest.raises(CompositionError, match="--reference-draws"):
         ScanOptions(references=True, reference_draws=1).validate()
+
+
+def test_report_has_writer_groups_and_reference_sections(scanned, tmp_path):
+    """The report of a scan with a group and references has the "Writer groups" and "Reference writers"
+    sections, the group's rows, and their CSV files. Common practice, no source."""
+    from composition.present.report import write_report
+
+    _, scan = scanned
+    html = write_report(scan.path, tmp_path / "report", svg=False).read_text()
+    assert '<h2 id="writer-groups">Writer groups</h2>' in html and '<h2 id="references">Reference writers</h2>' in html
+    assert "0.1+1.3" in html
+    rows = (tmp_path / "report" / "tables" / "group_pairs.csv").read_text().splitlines()
+    assert len(rows) == 1 + int(scan.groups["groups"]["done"].sum()) and "duo" in rows[1]
+    assert (tmp_path / "report" / "tables" / "references.csv").exists()
