@@ -308,13 +308,17 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
         verbs = {"copying": "copies", "suppressing": "suppresses", "neutral": "neutral"}
         lines = []
         for r in c.writers[:8]:
-            i = (*map(int, r["writer"].split(".")), *c.head)
+            if r["writer"] in scan.group_names:  # a writer group (docs/groups.md): its own arrays
+                arrays, i = scan.groups["groups"], (scan.group_names.index(r["writer"]), *c.head)
+            else:
+                arrays, i = scan.arrays, (*map(int, r["writer"].split(".")), *c.head)
             lines.append(
                 f'<span class="mono">{_e(r["writer"])}</span> &middot; mean pct '
-                f'{_interval(r["mean_percentile"], scan.mean_ci_low[i], scan.mean_ci_high[i])} &middot; '
-                f'q {_fmt_q(r["q_value"])} &middot; rows {int(scan.rows_evaluated[i]):,} &middot; writer '
+                f'{_interval(r["mean_percentile"], arrays["mean_ci_low"][i], arrays["mean_ci_high"][i])} &middot; '
+                f'q {_fmt_q(r["q_value"])} &middot; rows {int(arrays["rows_evaluated"][i]):,} &middot; writer '
                 f'{verbs.get(r["writer_ov"], r["writer_ov"])} &middot; {_chip(r["prediction"])} '
-                f'&middot; Q-comp {_fmt(r["q_composition"])} (z {_fmt(r["q_composition_z"], 1)})')
+                f'&middot; Q-comp {_fmt(r["q_composition"])} (z {_fmt(r["q_composition_z"], 1)})'
+                + (f' &middot; above generic {r["above_generic"]:+.3f}' if "above_generic" in r else ""))
         writers = "<br>".join(lines)
         if len(c.writers) > 8:
             writers += f"<br>\u2026 and {len(c.writers) - 8} more (shortlist.csv)"
