@@ -135,6 +135,7 @@ SCHEMA = SCHEMA + tuple(
 )
 
 GROUPS = ("pairs", "heads", "model_space", "groups", "group_heads", "references")
+OPTIONAL_GROUPS = ("groups", "group_heads", "references")  # only in scans with --writer-group / --references
 MAIN_AXES = {"pairs": PAIR_AXES, "model_space": PAIR_AXES, "heads": HEAD_AXES, "groups": GROUP_PAIR_AXES,
              "group_heads": GROUP_AXES, "references": HEAD_AXES}
 
