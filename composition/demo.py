@@ -267,10 +267,10 @@ def beyond_single_heads(root: str | Path, demo_model: str | Path | None = None) 
     when not given), restricted scans of both (``demo-before.h5``, ``demo-after.h5``) and their comparison
     (``demo-compare/``). Everything here is invented (data_cards/demo-model.md).
     """
-    from .compose.groups import WriterGroup, group_statistics
-    from .compose.references import band, reference_statistics
-    from .extract import load_weights
-    from .extract.tables import TableOptions, token_table
+    import numpy as np
+
+    from .compose import sides
+    from .compose.references import band
     from .interpret.compare import compare_scans
     from .run.scan import ScanOptions, run_scan
     from .score.stats import DEFAULT_MIN_EFFECT
@@ -278,32 +278,39 @@ def beyond_single_heads(root: str | Path, demo_model: str | Path | None = None) 
     root = Path(root)
     lines = ["writer groups and reference writers (invented model, data_cards/demo-model.md):"]
     model = build_group_demo(root / "group-demo-model")
-    single = run_scan(model, root / "group-demo-scan.h5", ScanOptions(writers="1,2", responders="3"), overwrite=True)
-    for head in (WRITER_GROUPS["quartet"][1], GENERIC_RESPONDER):
-        labelled = (single.label[:, :, head[0], head[1]] == 1) | (single.label[:, :, head[0], head[1]] == -1)  # [L, H]
-        found = [f"{a}.{b}" for a, b in zip(*labelled.nonzero())]
-        lines.append(f"  single-writer scan, responder {head[0]}.{head[1]}: labelled with "
-                     f"{', '.join(found) if found else 'no writer'}")
-    w = load_weights(model)
-    T = token_table(w, TableOptions("attn0-mlp0"))
     members, (lR, hR) = WRITER_GROUPS["quartet"]
-    group = WriterGroup("quartet", members)
-    lines.append(f"  group {group.spec} -> responder {lR}.{hR} (labels need |mean percentile - 0.5| >= "
+    quartet = "quartet=" + "+".join(f"{l}.{h}" for l, h in members)
+    scan = run_scan(model, root / "group-demo-scan.h5",
+                    ScanOptions(writers="1,2", responders="3", writer_groups=(quartet,), references=True),
+                    overwrite=True)
+    for head in ((lR, hR), GENERIC_RESPONDER):
+        labelled = np.isin(scan.label[:, :, head[0], head[1]], (1, -1))  # [L, H]
+        found = [f"{a}.{b}" for a, b in zip(*labelled.nonzero())]
+        lines.append(f"  single writers, responder {head[0]}.{head[1]}: labelled with "
+                     f"{', '.join(found) if found else 'no writer'}")
+    lines.append(f"  group {quartet} -> responder {lR}.{hR} (labels need |mean percentile - 0.5| >= "
                  f"{DEFAULT_MIN_EFFECT:g}):")
     for member in members:
-        alone = group_statistics(w, T, WriterGroup("alone", (member,)), lR)[hR].mean_percentile
-        lines.append(f"    member {member[0]}.{member[1]} alone: mean percentile {alone:.3f}")
-    together = group_statistics(w, T, group, lR)[hR].mean_percentile
-    lines.append(f"    the group together: mean percentile {together:.3f}")
-    ref = reference_statistics(w, T, lR)
-    lo, hi = band(__import__("numpy").array([[s.mean_percentile for s in d] for d in ref["random"]]).T)
+        lines.append(f"    member {member[0]}.{member[1]} alone: mean percentile "
+                     f"{scan.mean_percentile[member + (lR, hR)]:.3f}")
+    table = scan.group_pairs()
+    row = {k: v[(table["writer"] == "quartet") & (table["responder"] == f"{lR}.{hR}")][0] for k, v in table.items()}
+    lines.append(f"    the group's row of the scan: mean percentile {row['mean_percentile']:.3f}, label "
+                 f"{sides.get('query').words[int(row['label'])]}, q-value {row['q_value']:.1e}, above generic "
+                 f"{row['above_generic']:+.3f}, random z {row['random_z']:.1f}")
+    ref, attrs = scan.groups["references"], scan.group_attrs["references"]
     for head in (hR, GENERIC_RESPONDER[1]):
-        lines.append(f"  responder {lR}.{head} references: identity {ref['identity'][head].mean_percentile:.3f}, "
-                     f"unembedding {ref['unembedding'][head].mean_percentile:.3f}, random band "
-                     f"{lo[head]:.3f}-{hi[head]:.3f} ({ref['draws']} draws, seed {ref['seed']})")
-    lines.append(f"  responder {GENERIC_RESPONDER[0]}.{GENERIC_RESPONDER[1]} prefers each token's own key: its identity "
-                 "reference is as high as its labelled pairs, so any write of the token would do as well; responder "
-                 f"{lR}.{hR} answers the group far above its references")
+        lo, hi = band(ref["random_mean_percentile"][lR, head])
+        lines.append(f"  responder {lR}.{head} references (from {scan.path.name}): identity "
+                     f"{ref['identity_mean_percentile'][lR, head]:.3f}, unembedding "
+                     f"{ref['unembedding_mean_percentile'][lR, head]:.3f}, random band {lo:.3f}-{hi:.3f} "
+                     f"({attrs['draws']} draws, seed {attrs['seed']})")
+    generic = scan.pairs()
+    at = (generic["responder"] == f"{GENERIC_RESPONDER[0]}.{GENERIC_RESPONDER[1]}") & np.isin(generic["label"], (1, -1))
+    lines.append(f"  responder {GENERIC_RESPONDER[0]}.{GENERIC_RESPONDER[1]} prefers each token's own key: its labelled "
+                 f"pairs stand at most {np.max(np.abs(generic['above_generic'][at]), initial=0.0):.3f} above a generic "
+                 f"write of the token (any write would do as well); responder {lR}.{hR} answers the group far above "
+                 "its references")
     before = Path(demo_model) if demo_model is not None else build_demo(root / "demo-model")
     after = build_demo_after(root / "demo-model-after")
     options = ScanOptions(**COMPARE_SELECTION)

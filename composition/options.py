@@ -163,6 +163,30 @@ def side(name: str, part: str = "full", orientation: str | None = None) -> sides
     return sides.get(name, part, orientation)
 
 
+def writer_group(value) -> str:
+    """One ``--writer-group NAME=L.H+L.H``: its form checked here (members against the model in
+    ``writer_groups_for_model``); returned as given, stripped."""
+    from .compose.groups import parse_group
+
+    parse_group(value, 10**9, 10**9)  # the form alone; layer and head bounds need the model
+    return str(value).strip()
+
+
+def writer_groups_for_model(specs, n_layers: int, n_heads: int) -> tuple[str, ...]:
+    """Every ``--writer-group`` checked against the model, as normalised specs ``NAME=L.H+L.H``."""
+    from .compose.groups import parse_groups
+
+    return tuple(g.spec for g in parse_groups(specs, n_layers, n_heads))
+
+
+def reference_draws(value) -> int:
+    return count("--reference-draws", value, 2, 10_000)
+
+
+def reference_seed(value) -> int:
+    return count("--reference-seed", value, 0, MAX_SEED)
+
+
 def check_for_model(options, keys_per_row: int) -> None:
     """Checks that need the model, run once it is read and before any file exists."""
     too_big = [k for k in options.k if int(k) > keys_per_row]
@@ -209,6 +233,11 @@ class ScanOptions:
     # which path and which part of the write (METHODS §3, §3b; in the fingerprint)
     side: str = "query"  # query | key | value (METHODS §3, §3b)
     query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
+    # writer groups and reference writers (docs/groups.md; in the fingerprint only when used)
+    writer_groups: tuple[str, ...] = ()  # "NAME=L.H+L.H", normalised against the model by the driver
+    references: bool = False  # identity, unembedding and random-band references of every responder
+    reference_draws: int = 39  # draws of the random band (composition.compose.references.DEFAULT_DRAWS)
+    reference_seed: int = 0
 
     def validate(self) -> None:
         """Every check of the options above that needs no model (``check_for_model`` does the rest)."""
@@ -225,6 +254,21 @@ class ScanOptions:
         rows(self.rows)
         until_ci(self.until_ci)
         self.sampling().validate()
+        if isinstance(self.writer_groups, str):
+            raise CompositionError("--writer-group takes a list of NAME=L.H+L.H specs, not one string.")
+        for spec in self.writer_groups:
+            writer_group(spec)
+        if self.writer_groups and self.side == "query" and self.query_part != "full":
+            raise CompositionError(f"--writer-group needs the query side's full write, the key side or the value "
+                                   f"side; --query-part {self.query_part} is not defined for a group (its members' "
+                                   "writes are projected on each token's direction one by one).")
+        if self.references:
+            reference_draws(self.reference_draws)
+            reference_seed(self.reference_seed)
+            if (self.side, self.query_part, self.orientation) != ("query", "full", "row"):
+                raise CompositionError("--references compares pairs of the query side's full write in row "
+                                       "orientation; drop --references or scan with --side query --query-part full "
+                                       "--orientation row.")
 
 
 def parse_heads(spec: str | None, n_layers: int, n_heads: int, option: str) -> list[Head]:
@@ -276,12 +320,22 @@ def result_options(options: ScanOptions) -> dict:
     d["position"] = "none" if options.position is None else str(options.position)
     if options.query_part == "full":  # the default keeps the options (and fingerprint) of scans made before it
         d.pop("query_part")
+    d.pop("writer_groups")  # groups and references enter only when used: old fingerprints stay the same
+    if options.writer_groups:
+        d["writer_groups"] = list(options.writer_groups)
+    for key in ("references", "reference_draws", "reference_seed"):
+        d.pop(key)
+    if options.references:
+        d.update(references=True, reference_draws=int(options.reference_draws),
+                 reference_seed=int(options.reference_seed))
     return d
 
 
 def scan_options(kw: dict) -> ScanOptions:
     """A command's parsed keywords as ``ScanOptions`` (the rotary pair folded into one)."""
     kw = dict(kw)
+    if "writer_groups" in kw:
+        kw["writer_groups"] = tuple(kw["writer_groups"] or ())
     offsets_pair = pop_offsets(kw)
     return ScanOptions(k=kw.pop("ks", DEFAULT_K), rotary_offsets=offsets_pair, **kw)
 
@@ -368,6 +422,21 @@ _OPTIONS = {
         "--until-ci", type=_Parsed("W", until_ci), default=None, metavar="W",
         help="Sample rows in growing batches until every share's 95% interval is narrower than W (0 < W < 1) "
              "or the pair's label is decided."),
+    "writer_groups": click.option(
+        "--writer-group", "writer_groups", type=_Parsed("NAME=L.H+L.H", writer_group), multiple=True,
+        metavar="NAME=L.H+L.H",
+        help="Scan a group of heads as one writer whose write is the sum of its members' writes, against every "
+             "selected responder in a later layer than all members (repeatable; docs/groups.md)."),
+    "references": click.option(
+        "--references", is_flag=True, default=False,
+        help="Also compute each responder's reference writers (identity, unembedding, random band) and show "
+             "every pair beside them (query side, full write, row orientation; docs/groups.md)."),
+    "reference_draws": click.option(
+        "--reference-draws", type=_Parsed("N", reference_draws), default=39, show_default=True,
+        help="Random writers drawn per responder layer for the random band (2 to 10000)."),
+    "reference_seed": click.option(
+        "--reference-seed", type=_Parsed("SEED", reference_seed), default=0, show_default=True,
+        help="Seed of the random band's draws."),
     "calibrate": click.option(
         "--calibrate", type=_Parsed("SECONDS", calibrate), default=3.0, show_default=True,
         help="How long to time the ranks kernel on this machine (0.1 to 600 seconds)."),
@@ -379,6 +448,7 @@ GROUPS = {
     "matrix": ("table", "position", "side", "query_part", "orientation", "ks"),
     "labels": ("fdr", "min_effect"),
     "run": ("precision", "device", "rows", "seed", "until_ci"),
+    "beyond": ("writer_groups", "references", "reference_draws", "reference_seed"),
 }
 
 
@@ -400,4 +470,4 @@ def pop_offsets(kw: dict) -> tuple[int, int] | None:
 
 __all__ = ["GROUPS", "ScanOptions", "check_for_model", "check_offsets", "fdr", "head_label", "ks", "member",
            "min_effect", "offsets", "parse_heads", "pop_offsets", "position", "result_options", "scan_options", "seed",
-           "side", "use"]
+           "side", "use", "writer_group", "writer_groups_for_model"]

@@ -165,7 +165,7 @@ def group_statistics(w: Weights, table: torch.Tensor, group: WriterGroup, respon
                      rotation: torch.Tensor | None = None, precision: str = "fp32") -> list:
     """Query-side statistics (row orientation, every row) of a group against every head of a later layer.
 
-    # table [V, d] -> [H_R] PairStats. For notebooks and the demo until the scan driver takes groups;
+    # table [V, d] -> [H_R] PairStats. For notebooks and tests (the scan driver computes the same in work units, run/units.py);
     labels need the false discovery rate over all pairs of a scan, so none are given here.
     """
     from ..score.ranks import diagonal_midranks

@@ -139,7 +139,11 @@ def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
 
     Rank key: the smaller of the two effect sizes that put the head on the list, the
     head's own ``|OV mean percentile - 1/2|`` and the pair ``|mean percentile - 1/2|`` of its
-    strongest writer (both must be large for a strong candidate); ties by q-value.
+    strongest writer (both must be large for a strong candidate); ties by q-value. Writer groups
+    are writers like heads (named by their NAME; their OV sign from ``/group_heads``). When the
+    scan holds references, writers are ranked by ``|above_generic|`` (ties by ``|random_z|``) and
+    the pair's effect in the key is ``|above_generic|`` of the strongest writer: how far it goes
+    beyond what the responder does with a generic write of the token (docs/groups.md §3).
     """
     if not sides.for_scan(scan.attrs).feeds_prediction:
         return []
@@ -148,11 +152,16 @@ def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
     comp = compensation(scan.label, head_label)
     ms = heads.model_space
     ks = list(scan.k)
+    groups = scan.groups.get("groups")
+    group_ov = scan.groups.get("group_heads")
+    referenced = scan.groups.get("references") is not None
     out: list[Candidate] = []
     for kind, (s_qk, s_r) in SHORTLIST_KINDS.items():
         for lR, hR in np.argwhere(head_label == s_r):
             idx = np.argwhere(scan.label[:, :, lR, hR] == s_qk)  # [n, 2] writers
-            if idx.size == 0:
+            group_idx = (np.flatnonzero(groups["label"][:, lR, hR] == s_qk) if groups is not None
+                         else np.zeros(0, dtype=np.int64))  # writer groups, as writers of their own
+            if idx.size == 0 and group_idx.size == 0:
                 continue
             cand = Candidate(kind, (int(lR), int(hR)), float(ov_mp[lR, hR]), float(heads.heads["q_value"][lR, hR]),
                              float(heads.heads["eigen_copying_score"][lR, hR]))
@@ -161,10 +170,7 @@ def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
                 q_mean, q_sd = heads.baseline("q")
                 cand.writers.append({
                     "writer": f"{lU}.{hU}",
-                    "mean_percentile": float(scan.mean_percentile[i]),
-                    **{f"top_share_{k}": float(scan.top_share[i][j]) for j, k in enumerate(ks)},
-                    **{f"bottom_share_{k}": float(scan.bottom_share[i][j]) for j, k in enumerate(ks)},
-                    "q_value": float(scan.q_value[i]),
+                    **_pair_numbers(scan.arrays, i, ks),
                     "writer_ov": HEAD_LABEL_WORDS.get(int(head_label[lU, hU]), "not computed"),
                     "prediction": PREDICTION_WORDS[int(comp["prediction"][i])],
                     "q_composition": float(ms["q_composition"][i]),
@@ -172,11 +178,45 @@ def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
                     "projection_kernel_q": float(ms["projection_kernel_q"][i]),
                     "kernel_random_mean_q": float(ms["kernel_random_mean_q"][i]),
                 })
-            cand.writers.sort(key=lambda r: (-abs(r["mean_percentile"] - 0.5), r["q_value"]))
-            cand.strength = min(abs(cand.ov_mean_percentile - 0.5), abs(cand.writers[0]["mean_percentile"] - 0.5))
+            for g in group_idx:
+                s_writer = int(group_ov["label"][g]) if group_ov is not None else LABEL_NOT_COMPUTED
+                signs = (s_writer, s_qk, s_r)
+                prediction = (int(np.sign(s_writer * s_qk * s_r)) if LABEL_NOT_COMPUTED not in signs
+                              else LABEL_NOT_COMPUTED)
+                cand.writers.append({
+                    "writer": scan.group_names[g],
+                    **_pair_numbers(groups, (g, lR, hR), ks),
+                    "writer_ov": HEAD_LABEL_WORDS.get(s_writer, "not computed"),
+                    "prediction": PREDICTION_WORDS[prediction],
+                    # model-space scores are defined for single heads only (METHODS §7)
+                    "q_composition": float("nan"), "q_composition_z": float("nan"),
+                    "projection_kernel_q": float("nan"), "kernel_random_mean_q": float("nan"),
+                })
+            if referenced:  # docs/groups.md §3: how far each pair goes beyond a generic write of the token
+                found = scan.standing(np.array([r["mean_percentile"] for r in cand.writers]),
+                                      np.full(len(cand.writers), lR), np.full(len(cand.writers), hR))
+                for j, r in enumerate(cand.writers):
+                    r["above_generic"] = float(found["above_generic"][j])
+                    r["random_z"] = float(found["random_z"][j])
+                    r["outside_band"] = int(found["outside_band"][j])
+                cand.writers.sort(key=lambda r: (-abs(r["above_generic"]), -abs(np.nan_to_num(r["random_z"])),
+                                                 r["q_value"]))
+                cand.strength = min(abs(cand.ov_mean_percentile - 0.5), abs(cand.writers[0]["above_generic"]))
+            else:
+                cand.writers.sort(key=lambda r: (-abs(r["mean_percentile"] - 0.5), r["q_value"]))
+                cand.strength = min(abs(cand.ov_mean_percentile - 0.5),
+                                    abs(cand.writers[0]["mean_percentile"] - 0.5))
             out.append(cand)
     out.sort(key=lambda c: (-c.strength, c.ov_q_value, c.head))
     return out
+
+
+def _pair_numbers(arrays: dict, i: tuple, ks) -> dict:
+    """A pair's (or group pair's) mean percentile, shares and q-value, for the shortlist."""
+    return {"mean_percentile": float(arrays["mean_percentile"][i]),
+            **{f"top_share_{k}": float(arrays["top_share"][i][j]) for j, k in enumerate(ks)},
+            **{f"bottom_share_{k}": float(arrays["bottom_share"][i][j]) for j, k in enumerate(ks)},
+            "q_value": float(arrays["q_value"][i])}
 
 
 def shortlist_rows(candidates: list[Candidate]) -> list[dict]:

@@ -85,7 +85,7 @@ def main():
 @click.option("--out", "-o", required=True, type=click.Path(), help="Scan file to write (HDF5); if it holds an unfinished scan, it is resumed.")
 @click.option("--overwrite", is_flag=True, help="Replace an existing scan file and start afresh.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
-@opt.use("checkpoint", "selection", "matrix", "labels", "run")
+@opt.use("checkpoint", "selection", "matrix", "labels", "run", "beyond")
 @click.option("--cluster", metavar="ADDRESS", help="Run the work units on this Dask scheduler, e.g. tcp://host:8786 (needs the cluster extra).")
 @click.option("--workers", type=click.IntRange(min=1, max=opt.MAX_COUNT), metavar="N", help="Run the work units on a local Dask cluster of N processes (needs the cluster extra).")
 @click.option("--worker-checkpoint", metavar="PATH", help="The checkpoint's path as the workers see it (default: CHECKPOINT's absolute path).")

@@ -34,26 +34,38 @@ def pvalue(x: float) -> str:
 
 
 def findings(result, note: bool = True) -> list[str]:
-    """A scan's labelled pairs, strongest first, in its side's words."""
+    """A scan's labelled pairs, strongest first, in its side's words; writer groups are writers named by
+    their NAME (docs/groups.md), and a scan with references adds each pair's standing above a generic
+    write of the token (``above generic``, docs/groups.md §3)."""
     side = sides.for_scan(result.attrs)
-    lab = result.label
-    found = [tuple(int(i) for i in ix) for ix in np.argwhere((lab != 0) & (lab != LABEL_NOT_COMPUTED))]
-    found.sort(key=lambda i: -abs(result.mean_percentile[i] - 0.5))
+    tables = [result.pairs()] + ([result.group_pairs()] if result.groups.get("groups") is not None else [])
+    rows = [dict(zip(t, values)) for t in tables for values in zip(*t.values())]
+    computed = len(rows)
+    rows = [r for r in rows if int(r["label"]) in (1, -1)]
+    rows.sort(key=lambda r: -abs(r["mean_percentile"] - 0.5))
     k = int(result.k[0])
     lines = [f"side {side.name}" + (f", query part {side.part}" if side.part != "full" else ""),
              f"labelled responders (FDR {result.attrs['fdr']}, |mean percentile - 0.5| >= "
-             f"{result.attrs['min_effect']}): {len(found)} of {int(result.done.sum())} pairs"]
+             f"{result.attrs['min_effect']}): {len(rows)} of {computed} pairs"
+             + (f" (writer groups: {', '.join(result.group_names)})" if result.group_names else "")]
     fraction = side.part != "full" and "write_fraction" in result.arrays  # METHODS §3b: beside the shares
-    if found:
-        lines.append(f"  {'writer':<7} {'responder':<9}  {'label':<19} {'mean pct':>8} {f'top-{k}':>7} "
-                     f"{f'bottom-{k}':>9} {'q-value':>9}" + (f" {'write fraction':>14}" if fraction else ""))
-    for ix in found[:SHOW_AT_MOST]:
-        lines.append(f"  {f'{ix[0]}.{ix[1]}':<7} {f'{ix[2]}.{ix[3]}':<9}  {side.words[int(lab[ix])]:<19} "
-                     f"{result.mean_percentile[ix]:8.3f} {result.top_share[ix][0]:7.3f} "
-                     f"{result.bottom_share[ix][0]:9.3f} {pvalue(result.q_value[ix]):>9}"
-                     + (f" {result.write_fraction[ix]:14.3f}" if fraction else ""))
-    if len(found) > SHOW_AT_MOST:
-        lines.append(f"  ... and {len(found) - SHOW_AT_MOST} more, strongest first above; all are in {result.path}")
+    standing = "above_generic" in tables[0]
+    width = max([7] + [len(str(r["writer"])) for r in rows[:SHOW_AT_MOST]])
+    if rows:
+        lines.append(f"  {'writer':<{width}} {'responder':<9}  {'label':<19} {'mean pct':>8} {f'top-{k}':>7} "
+                     f"{f'bottom-{k}':>9} {'q-value':>9}" + (f" {'write fraction':>14}" if fraction else "")
+                     + (f" {'above generic':>13}" if standing else ""))
+    for r in rows[:SHOW_AT_MOST]:
+        lines.append(f"  {str(r['writer']):<{width}} {str(r['responder']):<9}  {side.words[int(r['label'])]:<19} "
+                     f"{r['mean_percentile']:8.3f} {r[f'top_share_{k}']:7.3f} "
+                     f"{r[f'bottom_share_{k}']:9.3f} {pvalue(r['q_value']):>9}"
+                     + (f" {r['write_fraction']:14.3f}" if fraction else "")
+                     + (f" {r['above_generic']:+13.3f}" if standing else ""))
+    if len(rows) > SHOW_AT_MOST:
+        lines.append(f"  ... and {len(rows) - SHOW_AT_MOST} more, strongest first above; all are in {result.path}")
+    if standing:
+        lines.append("  above generic: how far the pair's mean percentile goes beyond both the identity and the "
+                     "unembedding reference write of the token (0: a generic write goes as far; docs/groups.md §3)")
     if not side.feeds_prediction:
         lines += [f"note: {n}" for n in side_notes(result)[:2]]
     if note:
@@ -92,15 +104,23 @@ def shortlist(candidates, scan=None) -> list[str]:
     lines = [f"shortlist: {sum(c.kind == 'suppressor' for c in candidates)} candidate suppressor heads "
              f"(suppressing, attention-raising), {sum(c.kind == 'back-up' for c in candidates)} candidate "
              f"back-up heads (copying, attention-lowering)"]
+    standing = any("above_generic" in r for c in candidates for r in c.writers)
+    width = max([6] + [len(r["writer"]) for c in candidates for r in c.writers])
     if candidates:
         lines.append(f"  {'#':>2} {'kind':<10} {'head':>5} {'OV pct':>6} {'OV q':>8} {'copy':>6}  "
-                     f"{'writer':>6} {'pair pct':>8} {'pair q':>8} {'Q-comp z':>8}  prediction")
+                     f"{'writer':>{width}} {'pair pct':>8} {'pair q':>8} {'Q-comp z':>8}"
+                     + (f" {'above generic':>13} {'random z':>8}" if standing else "") + "  prediction")
     for rank, c in enumerate(candidates, 1):
         for j, r in enumerate(c.writers):
             head = (f"{rank:>2} {c.kind:<10} {c.label:>5} {c.ov_mean_percentile:6.3f} {pvalue(c.ov_q_value):>8} "
                     f"{c.copying_score:6.2f}" if j == 0 else " " * 43)
-            lines.append(f"  {head}  {r['writer']:>6} {r['mean_percentile']:8.3f} {pvalue(r['q_value']):>8} "
-                         f"{r['q_composition_z']:8.1f}  {r['prediction']}")
+            z = "" if np.isnan(r["q_composition_z"]) else f"{r['q_composition_z']:8.1f}"
+            lines.append(f"  {head}  {r['writer']:>{width}} {r['mean_percentile']:8.3f} {pvalue(r['q_value']):>8} "
+                         f"{z:>8}" + (f" {r['above_generic']:+13.3f} {r['random_z']:8.1f}" if standing else "")
+                         + f"  {r['prediction']}")
+    if standing:
+        lines.append("  ranked by above generic: the pair's mean percentile beyond both generic writes of the token "
+                     "(identity, unembedding); random z: against the random band's draws (docs/groups.md §3)")
     return lines + (_readout(scan.attrs.get("readout")) if scan is not None else [])
 
 

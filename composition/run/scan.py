@@ -34,7 +34,8 @@ from ..extract.weights import Weights
 from ..compose.sides import SideFactors
 from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
                                model_space_unit, profile_layer)
-from ..options import ScanOptions, parse_heads, result_options  # noqa: F401  (parse_heads: public API)
+from ..options import (ScanOptions, parse_heads, result_options,  # noqa: F401  (parse_heads: public API)
+                       writer_groups_for_model)
 from ..score.ranks import resolve_path
 from ..score.stats import HIST_BINS, labels
 from ..store import schema
@@ -44,7 +45,8 @@ from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASET
                               settings_change)
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
-from .units import WorkUnit, compute_unit, scan_pairs, unit_factors, work_units  # noqa: F401
+from .units import (GroupHeadUnit, GroupUnit, ReferenceUnit, WorkUnit, compute_unit, scan_pairs,  # noqa: F401
+                    unit_factors, work_units)
 
 Head = tuple[int, int]
 
@@ -85,19 +87,39 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     if w.rotary is not None and options.rotary_offsets is None:
         options = replace(options, rotary_offsets=(0, 0))  # the default, recorded as such
     pairs = scan_pairs(w, options)
+    options = replace(options, writer_groups=writer_groups_for_model(options.writer_groups, w.n_layers, w.n_heads))
     ks = tuple(int(k) for k in options.k)
     _check_model_options(w, options)
+    extra = beyond_units(w, options, pairs)
     table = _checked_table(w, options)  # [V, d]: every model-dependent fault is found before the file exists
-    units = work_units(pairs) + final_units(w, pairs)
+    units = work_units(pairs) + extra + final_units(w, pairs) + [GroupHeadUnit(g, spec) for g, spec
+                                                                 in enumerate(options.writer_groups)]
     attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
     groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
               "heads": schema.empty("heads", w.n_layers, w.n_heads, len(ks), HIST_BINS),
               "model_space": schema.empty("model_space", w.n_layers, w.n_heads, len(ks), HIST_BINS)}
+    start_attrs = {}
+    n_groups, draws = len(options.writer_groups), int(options.reference_draws)
+    if n_groups:
+        from ..compose.groups import parse_groups
+
+        found = parse_groups(options.writer_groups, w.n_layers, w.n_heads)
+        start_attrs["groups"] = {"group_names": [g.name for g in found],
+                                 "group_members": [[list(m) for m in g.members] for g in found],
+                                 "group_specs": [g.spec for g in found]}
+        for name in ("groups", "group_heads"):
+            groups[name] = schema.empty(name, w.n_layers, w.n_heads, len(ks), HIST_BINS, n_groups)
+    if options.references:
+        from ..compose.references import BAND
+
+        groups["references"] = schema.empty("references", w.n_layers, w.n_heads, len(ks), HIST_BINS, 0, draws)
+        start_attrs["references"] = {"draws": draws, "seed": int(options.reference_seed), "band": list(BAND),
+                                     "band_positions": "weibull: p (n + 1)"}
     with Guard() as guard:
         try:
             with guard.critical():
-                store = _open_store(out, attrs, groups, overwrite, w)
+                store = _open_store(out, attrs, groups, overwrite, w, start_attrs)
             with store:
                 if not store.complete:
                     _complete(store, run, guard, w, attrs, options, table,
@@ -115,6 +137,32 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
         except MemoryError:
             raise CompositionError(f"the scan of {out} ran out of memory; {run.committed_note(kept=True)}") from None
     return load_scan(out)
+
+
+def beyond_units(w: Weights, options: ScanOptions, pairs) -> list:
+    """The writer-group units (each group against every selected responder in a later layer than all
+    its members) and the reference units (every responder of the scan), in that order; a group that
+    meets no selected responder is refused with a sentence."""
+    from ..compose.groups import parse_groups
+
+    responders = parse_heads(options.responders, w.n_layers, w.n_heads, "--responders")
+    units: list = []
+    for g, group in enumerate(parse_groups(options.writer_groups, w.n_layers, w.n_heads)):
+        later: dict[int, list[int]] = {}
+        for lR, hR in responders:
+            if lR > group.last_layer:
+                later.setdefault(lR, []).append(hR)
+        if not later:
+            raise CompositionError(f"--writer-group {group.name}: no selected responder comes after its last member "
+                                   f"(layer {group.last_layer}); widen --responders or drop the group.")
+        units += [GroupUnit(g, group.spec, lR, tuple(hs)) for lR, hs in sorted(later.items())]
+    if options.references:
+        scanned = sorted({r for _, r in pairs} | {(u.responder_layer, h) for u in units for h in u.responder_heads})
+        by_layer: dict[int, list[int]] = {}
+        for lR, hR in scanned:
+            by_layer.setdefault(lR, []).append(hR)
+        units += [ReferenceUnit(lR, tuple(hs)) for lR, hs in sorted(by_layer.items())]
+    return units
 
 
 def _check_model_options(w: Weights, options: ScanOptions) -> None:
@@ -150,8 +198,9 @@ def _clean_if_nothing_committed(out: Path, run: "_Run") -> None:
 
 def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: dict, options: ScanOptions,
               table, execution: dict) -> None:
-    """Compute the missing units (pairs, then head profiles, then model-space scores), committing
-    each as it comes, then label all pairs and heads and finish: one transaction."""
+    """Compute the missing units (pairs, then writer groups and references, then head profiles,
+    model-space scores and the groups' OV profiles), committing each as it comes, then label all
+    pairs and heads and finish: one transaction. Only pair units go to a cluster; the rest run here."""
     run.begin(store)
 
     def commit(i: int, results) -> None:
@@ -162,21 +211,23 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
 
     todo = run.todo()
     pair_todo = [(i, u) for i, u in todo if isinstance(u, WorkUnit)]
-    final_todo = [(i, u) for i, u in todo if not isinstance(u, WorkUnit)]
+    final_todo = [(i, u) for i, u in todo if not isinstance(u, WorkUnit)]  # groups, references, heads, space
+    factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets))
     if pair_todo and (execution["cluster"] is not None or execution["workers"] is not None):
         from .cluster import run_units
 
         path = execution["worker_checkpoint"] or Path(execution["checkpoint"]).resolve()
         run_units(pair_todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
                   address=execution["cluster"], workers=execution["workers"])
-    elif pair_todo:
-        factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets))
+    else:
         for i, unit in pair_todo:
             commit(i, compute_unit(factors, unit, options))
     space = ModelSpace(w)
     ks = tuple(int(k) for k in options.k)
     for i, unit in final_todo:
-        if isinstance(unit, HeadUnit):
+        if isinstance(unit, (GroupUnit, GroupHeadUnit, ReferenceUnit)):  # in this process, after the pairs
+            commit(i, compute_unit(factors, unit, options))
+        elif isinstance(unit, HeadUnit):
             commit(i, ("heads", *profile_layer(w, table, unit.layer, unit.heads, ks, options.block_rows)))
         else:
             commit(i, ("model_space", *model_space_unit(space, unit.writer_layer)))
@@ -184,8 +235,10 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
                                        options.min_effect, attrs["weights_fingerprint"]),
                    "model_space": model_space_attrs(w)}
     with guard.critical():
-        _label_all(store.arrays, options)
+        _label_all(store.arrays, options, store.groups.get("groups"))
         label_heads(store.groups["heads"], options.fdr, options.min_effect)
+        if "group_heads" in store.groups:
+            _label_group_heads(store.groups["heads"], store.groups["group_heads"], options)
         store.finish(dict(attrs, created=store.attrs.get("created", attrs["created"]), finished=_now()), group_attrs)
     run.finish()
 
@@ -212,7 +265,8 @@ def final_units(w: Weights, pairs) -> list:
             + [SpaceUnit(l) for l in range(w.n_layers)])
 
 
-def _open_store(out: Path, attrs: dict, groups: dict, overwrite: bool, w: Weights) -> ScanStore:
+def _open_store(out: Path, attrs: dict, groups: dict, overwrite: bool, w: Weights,
+                start_attrs: dict | None = None) -> ScanStore:
     """Resume the scan file ``out`` if it exists (refusing a different scan), else start it.
 
     A complete file without /heads or /model_space (left by an earlier version, or a kill
@@ -232,22 +286,25 @@ def _open_store(out: Path, attrs: dict, groups: dict, overwrite: bool, w: Weight
                 raise CompositionError(f"cannot resume {out}: its dataset /pairs/{name} has another shape; "
                                        "pass --overwrite to start afresh.")
         complete = old_attrs.get("status", STATUS_COMPLETE) == STATUS_COMPLETE
-        missing = [g for g in ("heads", "model_space") if g not in old_groups]
+        missing = [g for g in groups if g != "pairs" and g not in old_groups]
         if complete and missing:  # finish the groups in one transaction, the pairs kept as they are
             kept = dict(groups, pairs=old_groups["pairs"])
             try:
-                return ScanStore.start(out, dict(attrs, created=old_attrs.get("created", attrs["created"])), kept)
+                return ScanStore.start(out, dict(attrs, created=old_attrs.get("created", attrs["created"])), kept,
+                                       dict(old_group_attrs, **(start_attrs or {})))
             except ScanWriteError as exc:
                 raise CompositionError(f"cannot write the scan file {out} ({exc.reason}); it is left as it was.") from None
         for g in missing:
             old_groups[g] = groups[g]
+            if g in (start_attrs or {}):
+                old_group_attrs[g] = start_attrs[g]
     else:
         if out.exists() and out.is_dir():
             raise CompositionError(f"{out} is a directory, not a scan file path.")
     try:
         if resume:
             return ScanStore.resume(out, old_attrs, old_groups, old_group_attrs)
-        return ScanStore.start(out, attrs, groups)
+        return ScanStore.start(out, attrs, groups, start_attrs)
     except ScanWriteError as exc:
         left = ("it is left as it was" if resume else
                 "the existing file is left in place" if out.exists() else "nothing was written")
@@ -276,7 +333,7 @@ def _check_resumable(out: Path, old: dict, new: dict, w: Weights) -> None:
     new_opts = json.loads(new["options"])
     for key in sorted(set(old_opts) | set(new_opts)):
         if old_opts.get(key) != new_opts.get(key):
-            diffs.append(f"--{key.replace('_', '-')} differs ({_show(old_opts.get(key))} in the file, "
+            diffs.append(f"{_OPTION_NAMES.get(key, '--' + key.replace('_', '-'))} differs ({_show(old_opts.get(key))} in the file, "
                          f"{_show(new_opts.get(key))} now)")
     for key in ("writers", "responders"):
         if _selection(old.get(key), old, key) != _selection(new[key], new, key):
@@ -284,6 +341,9 @@ def _check_resumable(out: Path, old: dict, new: dict, w: Weights) -> None:
     if diffs:
         listed = diffs[0] if len(diffs) == 1 else ", ".join(diffs[:-1]) + " and " + diffs[-1]
         raise CompositionError(f"cannot resume {out}: {listed}; pass --overwrite to start afresh.")
+
+
+_OPTION_NAMES = {"writer_groups": "--writer-group"}  # option keys whose command-line spelling differs
 
 
 def _selection(spec, attrs: dict, key: str):
@@ -345,6 +405,13 @@ class _Run:
                 self.done[i] = all(done[unit.writer + (unit.responder_layer, h)] for h in unit.responder_heads)
             elif isinstance(unit, HeadUnit):
                 self.done[i] = all(heads_done[unit.layer, h] for h in unit.heads)
+            elif isinstance(unit, GroupUnit):
+                self.done[i] = all(store.groups["groups"]["done"][unit.group, unit.responder_layer, h]
+                                   for h in unit.responder_heads)
+            elif isinstance(unit, GroupHeadUnit):
+                self.done[i] = bool(store.groups["group_heads"]["done"][unit.group])
+            elif isinstance(unit, ReferenceUnit):
+                self.done[i] = all(store.groups["references"]["done"][unit.layer, h] for h in unit.heads)
             else:
                 self.done[i] = bool(space_done[unit.writer_layer])
         self.units_before = self.units_done = sum(self.done)
@@ -420,11 +487,33 @@ def _store(arrays, index, s) -> None:
     arrays["done"][index] = True
 
 
-def _label_all(arrays, options: ScanOptions) -> None:
-    done = arrays["done"]
-    lab, q = labels(arrays["mean_percentile"][done], arrays["p_value"][done], options.fdr, options.min_effect)
-    arrays["label"][done] = lab
-    arrays["q_value"][done] = q
+def _label_all(arrays, options: ScanOptions, group_arrays=None) -> None:
+    """Labels and q-values of every pair, and of every writer group's pair, in ONE Benjamini-Hochberg
+    family (docs/groups.md): a group is one more writer of the scan."""
+    families = [arrays] + ([group_arrays] if group_arrays is not None else [])
+    _label_family(families, options)
+
+
+def _label_group_heads(heads, group_heads, options: ScanOptions) -> None:
+    """Copying/suppressing labels of the groups' OV profiles, Benjamini-Hochberg over the profiled heads
+    and the groups together; the heads keep their own labels (label_heads, over heads alone)."""
+    before = {name: heads[name].copy() for name in ("label", "q_value")}
+    _label_family([heads, group_heads], options)
+    for name, values in before.items():
+        heads[name][...] = values
+
+
+def _label_family(families: list, options: ScanOptions) -> None:
+    done = [a["done"] for a in families]
+    mp = np.concatenate([a["mean_percentile"][d] for a, d in zip(families, done)])
+    pv = np.concatenate([a["p_value"][d] for a, d in zip(families, done)])
+    lab, q = labels(mp, pv, options.fdr, options.min_effect)
+    start = 0
+    for a, d in zip(families, done):
+        n = int(d.sum())
+        a["label"][d] = lab[start:start + n]
+        a["q_value"][d] = q[start:start + n]
+        start += n
 
 
 def _attrs(w: Weights, options: ScanOptions, ks, n_pairs: int) -> dict:

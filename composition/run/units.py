@@ -1,4 +1,5 @@
-"""Work units: one writer head against the selected heads of one responder layer.
+"""Work units: one writer head (or writer group) against the selected heads of one responder
+layer; a writer group's OV profile; the reference writers of one responder layer.
 
 Both the driver (``composition.run.scan``) and the cluster workers (``composition.run.cluster``)
 compute units through ``compute_unit``; neither imports the other for it. The side (query,
@@ -11,6 +12,9 @@ rows the scan reads.
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
+
+import numpy as np
+import torch
 
 from ..compose import sides
 from ..errors import CompositionError
@@ -62,22 +66,177 @@ def unit_factors(w: Weights, options) -> SideFactors:
     return SideFactors(w, T, offsets_rotation(w, options.rotary_offsets))
 
 
-def compute_unit(factors: SideFactors, unit: WorkUnit, options) -> dict:
-    """Statistics of every pair of one work unit: ``{(writer, responder): PairStats}``."""
+def compute_unit(factors: SideFactors, unit, options):
+    """Statistics of every pair of one work unit: ``{(writer, responder): PairStats}``; a writer
+    group's or reference unit gives ``(group, index [n, m], {name: [n, ...]})`` for the store."""
+    if isinstance(unit, GroupUnit):
+        return compute_group_unit(factors, unit, options)
+    if isinstance(unit, GroupHeadUnit):
+        return compute_group_head_unit(factors, unit, options)
+    if isinstance(unit, ReferenceUnit):
+        return compute_reference_unit(factors, unit, options)
     side = sides.get(options.side, options.query_part)
     lR = unit.responder_layer
-    written = side.written(factors, unit.writer, lR)
-    lefts, rights = [], []
-    for hR in unit.responder_heads:
-        left, right = side.oriented(written(hR), _Fixed(side, lR, hR), options.orientation)
-        lefts.append(_left(factors, left))
-        rights.append(_right(factors, right, options))
-    stats = evaluate_pairs(lefts, rights, factors.w.vocab_size, tuple(int(k) for k in options.k),
-                           options.sampling(), options.min_effect, options.precision, options.device,
-                           options.engine, options.block_rows)
+    stats = _evaluate(factors, side, side.written(factors, unit.writer, lR), lR, unit.responder_heads, options)
     fraction = side.write_fraction(factors, unit.writer)
     return {(unit.writer, (lR, hR)): replace(st, write_fraction=fraction)
             for hR, st in zip(unit.responder_heads, stats)}
+
+
+def _evaluate(factors: SideFactors, side, written, lR: int, heads, options) -> list:
+    """PairStats of one written factor (responder head -> factor) against the given heads of layer ``lR``."""
+    lefts, rights = [], []
+    for hR in heads:
+        left, right = side.oriented(written(hR), _Fixed(side, lR, hR), options.orientation)
+        lefts.append(_left(factors, left))
+        rights.append(_right(factors, right, options))
+    return _stats(factors, lefts, rights, options)
+
+
+def _stats(factors: SideFactors, lefts, rights, options) -> list:
+    return evaluate_pairs(lefts, rights, factors.w.vocab_size, tuple(int(k) for k in options.k),
+                          options.sampling(), options.min_effect, options.precision, options.device,
+                          options.engine, options.block_rows)
+
+
+# ---------------------------------------------------------------------------
+# writer groups (docs/groups.md §1): one more writer whose values have n dh columns
+# ---------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class GroupUnit:
+    """One writer group (index ``group`` into the scan's groups) against the selected heads of one
+    responder layer later than all its members."""
+
+    group: int
+    spec: str  # NAME=L.H+L.H, normalised
+    responder_layer: int
+    responder_heads: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class GroupHeadUnit:
+    """A writer group's OV profile: the sum of its members' OV token matrices (METHODS §5)."""
+
+    group: int
+    spec: str
+
+
+def _group(factors: SideFactors, spec: str):
+    from ..compose.groups import parse_group
+
+    return parse_group(spec, factors.w.n_layers, factors.w.n_heads)
+
+
+def _group_values(factors: SideFactors, group) -> torch.Tensor:
+    """``A_G``, kept while consecutive units use the same group. # -> [V, n dh]"""
+    from ..compose.groups import group_values
+
+    return factors.held("group_values", group.spec, lambda: group_values(factors.w, factors.table, group,
+                                                                         values_of=factors.values))
+
+
+def compute_group_unit(factors: SideFactors, unit: GroupUnit, options):
+    """Pair statistics of a writer group against the unit's responders, through the scan's side: the
+    written factor is ``A_G @ C_G,R`` with the members' middles of that side stacked (compose.groups).
+
+    # -> ("groups", index [n, 3] (group, responder layer, head), {name: [n, ...]})
+    """
+    side = sides.get(options.side, options.query_part)
+    group, lR = _group(factors, unit.spec), unit.responder_layer
+    A = _group_values(factors, group)  # [V, n dh]
+    middles = torch.cat([side.middles(factors, m, lR) for m in group.members], dim=1)  # [H, n dh, dh]
+    stats = _evaluate(factors, side, lambda hR: Product(A, middles[hR]), lR, unit.responder_heads, options)
+    fields = _fields("groups", len(stats), options)
+    for j, st in enumerate(stats):
+        _put(fields, j, replace(st, write_fraction=1.0).datasets())
+    index = np.array([[unit.group, lR, h] for h in unit.responder_heads], dtype=np.int64).reshape(-1, 3)
+    return "groups", index, fields
+
+
+def compute_group_head_unit(factors: SideFactors, unit: GroupHeadUnit, options):
+    """The group's OV profile, with the kernel and rule of a head profile (interpret.heads.profile_layer):
+    diagonal midranks of ``F_G = A_G B_G^T`` over every row, and the eigenvalue copying score.
+
+    # -> ("group_heads", index [1, 1], {name: [1, ...]})
+    """
+    from ..compose.groups import group_readouts
+    from ..interpret.heads import eigen_copying_score
+    from ..score.ranks import diagonal_midranks
+    from ..score.stats import summarise
+
+    w = factors.w
+    group = _group(factors, unit.spec)
+    n_rows = min(w.vocab_size, w.W_U.shape[1])  # the diagonal exists for t < min(V_in, V_out)
+    A = _group_values(factors, group)[:n_rows]  # [V, n dh]
+    B = group_readouts(w, group)  # [V_out, n dh]
+    ranks = diagonal_midranks(A, B, rows=torch.arange(n_rows), block_rows=options.block_rows).numpy()  # [V]
+    s = summarise(ranks, w.W_U.shape[1], tuple(int(k) for k in options.k))
+    fields = _fields("group_heads", 1, options)
+    for name, value in (("top_share", s.top_share), ("bottom_share", s.bottom_share),
+                        ("mean_percentile", s.mean_percentile), ("histogram", s.histogram),
+                        ("rows_evaluated", s.rows), ("p_value", s.p_value),
+                        ("eigen_copying_score", eigen_copying_score(A, B[:n_rows])), ("done", True)):
+        fields[name][0] = value
+    fields.pop("label")
+    fields.pop("q_value")
+    return "group_heads", np.array([[unit.group]], dtype=np.int64), fields
+
+
+# ---------------------------------------------------------------------------
+# reference writers (docs/groups.md §2): identity, unembedding and the random band
+# ---------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ReferenceUnit:
+    """Every reference writer of the selected heads of one responder layer (query side, full write, rows)."""
+
+    layer: int
+    heads: tuple[int, ...]
+
+
+def compute_reference_unit(factors: SideFactors, unit: ReferenceUnit, options):
+    """Identity, unembedding and every random draw against the unit's responders, each a written
+    factor on the query side with the responder's own keys (compose.references); the draws are
+    recomputed from ``(seed, layer, draw)``.
+
+    # -> ("references", index [n, 2] (layer, head), {name: [n, ...]}, random_mean_percentile [n, draws])
+    """
+    from ..compose import references as ref
+
+    side, w, lR, heads = sides.get("query"), factors.w, unit.layer, unit.heads
+    draws = int(options.reference_draws)
+    identity = ref.identity_queries(w, factors.table, lR, factors.rotation)  # [H, V, dh]
+    unembedding = ref.unembedding_queries(w, lR, factors.rotation)  # [H, V, dh]
+    fields = _fields("references", len(heads), options, draws)
+    for kind, queries in (("identity", identity), ("unembedding", unembedding)):
+        stats = _evaluate(factors, side, lambda hR, q=queries: q[hR], lR, heads, options)
+        for j, st in enumerate(stats):
+            fields[f"{kind}_mean_percentile"][j] = st.mean_percentile
+            fields[f"{kind}_top_share"][j] = st.top_share
+            fields[f"{kind}_bottom_share"][j] = st.bottom_share
+            fields[f"{kind}_p_value"][j] = st.p_value
+    for d in range(draws):
+        rw = ref.random_writer(w, factors.table, lR, d, int(options.reference_seed))
+        middles = ref.random_middles(w, rw, lR, factors.rotation)  # [H, dh, dh]
+        stats = _evaluate(factors, side, lambda hR: Product(rw.values, middles[hR]), lR, heads, options)
+        fields["random_mean_percentile"][:, d] = [st.mean_percentile for st in stats]
+    fields["done"][:] = True
+    return "references", np.array([[lR, h] for h in heads], dtype=np.int64).reshape(-1, 2), fields
+
+
+def _fields(group: str, n: int, options, draws: int = 0) -> dict:
+    from ..score.stats import HIST_BINS
+    from ..store import schema
+
+    return schema.unit_arrays(group, n, len(options.k), HIST_BINS, draws)
+
+
+def _put(fields: dict, j: int, values: dict) -> None:
+    for name, value in values.items():
+        if name in fields:
+            fields[name][j] = value
+    fields["done"][j] = True
 
 
 @dataclass(frozen=True)
@@ -112,4 +271,5 @@ def _right(factors: SideFactors, factor, options):
     return packed[factor.head]
 
 
-__all__ = ["WorkUnit", "compute_unit", "scan_pairs", "unit_factors", "work_units"]
+__all__ = ["GroupHeadUnit", "GroupUnit", "ReferenceUnit", "WorkUnit", "compute_unit", "scan_pairs", "unit_factors",
+           "work_units"]

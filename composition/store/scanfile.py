@@ -119,8 +119,65 @@ class Scan:
     def pairs(self) -> dict[str, np.ndarray]:
         """A tidy table of the computed pairs: one 1-D array per column (pandas-ready):
         integer ``writer_layer, writer_head, responder_layer, responder_head``, the labels
-        ``writer``/``responder``, and per k the shares with their intervals (store.schema.tidy)."""
-        return schema.tidy("pairs", self.arrays, self.k, np.argwhere(self.arrays["done"]))
+        ``writer``/``responder``, and per k the shares with their intervals (store.schema.tidy).
+        A scan with references adds each pair's standing against its responder's references
+        (:meth:`references_of`). Writer groups' pairs are in :meth:`group_pairs`."""
+        table = schema.tidy("pairs", self.arrays, self.k, np.argwhere(self.arrays["done"]))
+        return self._with_standing(table)
+
+    @property
+    def group_names(self) -> list[str]:
+        """The scan's writer groups, in the order of the ``/groups`` arrays (empty without groups)."""
+        return [str(n) for n in self.group_attrs.get("groups", {}).get("group_names", [])]
+
+    @property
+    def group_members(self) -> dict[str, list[tuple[int, int]]]:
+        """Each writer group's member heads."""
+        members = self.group_attrs.get("groups", {}).get("group_members", [])
+        return {name: [tuple(int(v) for v in m) for m in ms] for name, ms in zip(self.group_names, members)}
+
+    def group_pairs(self) -> dict[str, np.ndarray]:
+        """The writer groups' pairs as a tidy table with the columns of :meth:`pairs`: the writer is the
+        group's name (``writer`` and ``writer_group``), ``writer_layer = writer_head = -1``, plus the
+        integer ``group`` index into ``/groups``. Empty columns when the scan has no groups."""
+        arrays = self.groups.get("groups")
+        if arrays is None:
+            arrays = schema.empty("groups", 1, 1, len(self.k), 1, 0)
+        idx = np.argwhere(arrays["done"])  # [P, 3]
+        table = schema.tidy("groups", arrays, self.k, idx)
+        names = np.array(self.group_names + [""], dtype=str)
+        table["writer"] = names[idx[:, 0]] if len(idx) else np.array([], dtype=str)
+        table["writer_group"] = table["writer"]
+        table["writer_layer"] = np.full(len(idx), -1, dtype=np.int64)
+        table["writer_head"] = np.full(len(idx), -1, dtype=np.int64)
+        return self._with_standing(table)
+
+    def references_of(self, responder_layer, responder_head) -> dict[str, np.ndarray] | None:
+        """The references of responders (arrays of layers and heads, any shape), or None when the scan
+        has none: ``identity``, ``unembedding`` (mean percentiles) and ``draws`` ``[..., draws]``."""
+        ref = self.groups.get("references")
+        if ref is None:
+            return None
+        sel = (np.asarray(responder_layer, dtype=np.int64), np.asarray(responder_head, dtype=np.int64))
+        return {"identity": ref["identity_mean_percentile"][sel], "unembedding": ref["unembedding_mean_percentile"][sel],
+                "draws": ref["random_mean_percentile"][sel], "done": ref["done"][sel]}
+
+    def standing(self, mean_percentile, responder_layer, responder_head) -> dict[str, np.ndarray] | None:
+        """How far pairs stand above their responders' references (compose.references.standing,
+        docs/groups.md §3); None when the scan has no references. # [...] -> {name: [...]}"""
+        from ..compose.references import standing
+
+        ref = self.references_of(responder_layer, responder_head)
+        if ref is None:
+            return None
+        return standing(mean_percentile, ref["identity"], ref["unembedding"], ref["draws"])
+
+    def _with_standing(self, table: dict) -> dict:
+        found = self.standing(table["mean_percentile"], table["responder_layer"], table["responder_head"])
+        if found is not None:
+            for name in ("above_identity", "above_unembedding", "random_z", "outside_band", "above_generic"):
+                table[name] = found[name]
+        return table
 
 
 def load_scan(path: str | os.PathLike, complete_only: bool = False) -> Scan:
@@ -218,7 +275,7 @@ def read_scan_groups(path: Path) -> tuple[dict, dict[str, dict[str, np.ndarray]]
             if _text(f.attrs.get("format")) != FORMAT_NAME:
                 raise CompositionError(f"{path} is not a scan file of this tool.")
             attrs = {k: _unattr(v) for k, v in f.attrs.items()}
-            sizes = _sizes(path, attrs)
+            sizes = _sizes(path, attrs) + _extra_sizes(path, f)
             groups, group_attrs = {}, {}
             for name in schema.GROUPS:
                 if name not in f:
@@ -270,6 +327,27 @@ def _sizes(path: Path, attrs: dict) -> tuple[int, int, int, int]:
     return out[0], out[1], len(k), bins
 
 
+def _extra_sizes(path: Path, f) -> tuple[int, int]:
+    """``(n_groups, n_draws)``: the writer groups named in ``/groups`` and the random band's draws of
+    ``/references`` (0 where the file has no such group), checked."""
+    n_groups = n_draws = 0
+    if "groups" in f:
+        names = _unattr(f["groups"].attrs.get("group_names", "[]"))
+        try:
+            names = json.loads(names) if isinstance(names, str) else list(names)
+        except (TypeError, ValueError):
+            names = None
+        if not isinstance(names, list) or not all(isinstance(n, str) for n in names) or len(names) > 100_000:
+            raise CompositionError(f"{path} is not a valid scan file: /groups has no valid group_names attribute.")
+        n_groups = len(names)
+    if "references" in f:
+        draws = _unattr(f["references"].attrs.get("draws"))
+        if not isinstance(draws, int) or isinstance(draws, bool) or not 0 < draws <= 100_000:
+            raise CompositionError(f"{path} is not a valid scan file: /references has draws {draws!r}.")
+        n_draws = draws
+    return n_groups, n_draws
+
+
 def _read_dataset(path: Path, group, gname: str, name: str, sizes) -> np.ndarray:
     import h5py
 
@@ -300,7 +378,8 @@ def _text(value):
 # file   := record(header) record(unit)*
 # record := b"CJ01" | u32 payload length | u32 CRC-32 of payload | payload     (little-endian)
 # header payload: JSON {"scan_id": ...}
-# unit payload  := u32 JSON length | JSON {"group": "pairs" | "heads" | "model_space",
+# unit payload  := u32 JSON length | JSON {"group": a name of store.schema.GROUPS (pairs, heads,
+#                                         model_space, groups, group_heads, references),
 #                                         "pairs": [[i0, i1, ...], ...],   (leading indices, [n, m])
 #                                         "fields": [[name, dtype, shape], ...]} | raw arrays
 # The arrays are C-ordered bytes, one per field, each of shape [n, ...]. A record without
@@ -473,12 +552,12 @@ class ScanStore:
         return self.groups["pairs"]
 
     @classmethod
-    def start(cls, path: Path, attrs: dict, groups) -> "ScanStore":
+    def start(cls, path: Path, attrs: dict, groups, group_attrs: dict | None = None) -> "ScanStore":
         """A new in-progress scan file (replacing any file of that name) and an empty journal."""
         if "pairs" not in groups:  # a dict of /pairs arrays
             groups = {"pairs": groups}
         attrs = dict(attrs, status=STATUS_IN_PROGRESS, scan_id=uuid.uuid4().hex, journal=journal_path(path).name)
-        store = cls(path, attrs, groups, complete=False)
+        store = cls(path, attrs, groups, complete=False, group_attrs=group_attrs)
         check_target(path, "scan file")
         store._lock(create=True)
         try:

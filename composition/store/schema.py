@@ -1,4 +1,5 @@
-"""The one schema of the scan file: every dataset of ``/pairs``, ``/heads`` and ``/model_space``.
+"""The one schema of the scan file: every dataset of ``/pairs``, ``/heads``, ``/model_space``,
+``/groups``, ``/group_heads`` and ``/references``.
 
 Each dataset is declared once here (name, dtype, fill value, axes, meaning in one line).
 The scan file's empty arrays, the per-unit arrays a work unit commits, the checks that
@@ -9,7 +10,11 @@ flattening function, :func:`tidy`) and the Markdown table of docs/scan-file.md
 Axis names: ``L`` layers, ``H`` heads per layer, ``k`` the scan's k values, ``bins`` the
 histogram bins. The leading axes of a group index its rows: ``/pairs`` and the pair
 datasets of ``/model_space`` are ``[writer_layer, writer_head, responder_layer,
-responder_head]``, ``/heads`` is ``[layer, head]``.
+responder_head]``, ``/heads`` is ``[layer, head]``. Writer groups (docs/groups.md): ``/groups``
+holds each group's pairs ``[group, responder_layer, responder_head]`` (axis ``G``: the groups, in
+the order of the group attribute ``group_names``), ``/group_heads`` each group's OV profile
+``[group]``. Reference writers: ``/references`` is ``[layer, head]`` (responders), with the
+random band's draws as a trailing axis ``draws`` (the group attribute ``draws``).
 """
 
 from __future__ import annotations
@@ -22,27 +27,31 @@ LABEL_FILL = -128  # int8 label of a pair or head not computed (== score.stats.L
 
 PAIR_AXES = ("writer_layer", "writer_head", "responder_layer", "responder_head")
 HEAD_AXES = ("layer", "head")
+GROUP_PAIR_AXES = ("group", "responder_layer", "responder_head")
+GROUP_AXES = ("group",)
+TRAILING = ("k", "bins", "draws")
 
 
 @dataclass(frozen=True)
 class Dataset:
-    group: str  # "pairs" | "heads" | "model_space"
+    group: str  # one of GROUPS
     name: str
     dtype: str  # NumPy dtype string
     fill: object  # value of an entry not computed
-    axes: tuple[str, ...]  # leading index axes (names above) + optional trailing "k" | "bins"
+    axes: tuple[str, ...]  # leading index axes (names above) + optional trailing "k" | "bins" | "draws"
     meaning: str
 
     @property
     def leading(self) -> tuple[str, ...]:
-        return tuple(a for a in self.axes if a not in ("k", "bins"))
+        return tuple(a for a in self.axes if a not in TRAILING)
 
     @property
     def trailing(self) -> str | None:
-        return self.axes[-1] if self.axes[-1] in ("k", "bins") else None
+        return self.axes[-1] if self.axes[-1] in TRAILING else None
 
-    def shape(self, n_layers: int, n_heads: int, n_k: int, n_bins: int) -> tuple[int, ...]:
-        sizes = {"k": n_k, "bins": n_bins}
+    def shape(self, n_layers: int, n_heads: int, n_k: int, n_bins: int, n_groups: int = 0,
+              n_draws: int = 0) -> tuple[int, ...]:
+        sizes = {"k": n_k, "bins": n_bins, "group": n_groups, "draws": n_draws}
         return tuple(sizes.get(a, n_layers if a.endswith("layer") else n_heads) for a in self.axes)
 
 
@@ -96,7 +105,39 @@ SCHEMA: tuple[Dataset, ...] = tuple(
     + [Dataset("model_space", "done", "?", False, ("writer_layer",), "the writer layer's scores are computed")]
 )
 
-GROUPS = ("pairs", "heads", "model_space")
+_PAIRS = [d for d in SCHEMA if d.group == "pairs"]
+_HEAD_STATS = [d for d in SCHEMA if d.group == "heads"]
+
+_REFERENCE_WORDS = {"identity": "the token table row itself written into the query",
+                    "unembedding": "the token's unit unembedding direction written into the query"}
+
+SCHEMA = SCHEMA + tuple(
+    [Dataset("groups", d.name, d.dtype, d.fill, GROUP_PAIR_AXES + d.axes[4:],
+             (d.meaning.replace("the pair", "the group's pair").replace("the writer's", "the group's")
+              .replace("over the whole scan", "over the scan's pairs and group pairs together")))
+     for d in _PAIRS]
+    + [Dataset("group_heads", d.name, d.dtype, d.fill, GROUP_AXES + d.axes[2:],
+               {"label": _HEAD_LABEL.replace("not computed", "not computed (the group's OV token matrix, "
+                                             "the sum of its members')"),
+                "q_value": "Benjamini-Hochberg q-value over the scan's profiled heads and its groups together",
+                "done": "the group's OV profile is computed"}.get(d.name, d.meaning.replace("the head's", "the group's")))
+       for d in _HEAD_STATS]
+    + [Dataset("references", f"{kind}_{name}", "f8", np.nan, HEAD_AXES + trailing,
+               f"{meaning} under {_REFERENCE_WORDS[kind]} (the responder's {kind} reference)")
+       for kind in ("identity", "unembedding")
+       for name, trailing, meaning in (("mean_percentile", (), "mean percentile of the diagonal"),
+                                       ("top_share", ("k",), "top-k share of the diagonal"),
+                                       ("bottom_share", ("k",), "bottom-k share of the diagonal"),
+                                       ("p_value", (), "two-sided p-value of the mean percentile"))]
+    + [Dataset("references", "random_mean_percentile", "f8", np.nan, HEAD_AXES + ("draws",),
+               "mean percentile of the diagonal under each random writer of the band (draw d of the responder's layer)"),
+       Dataset("references", "done", "?", False, HEAD_AXES, "the responder's references are computed")]
+)
+
+GROUPS = ("pairs", "heads", "model_space", "groups", "group_heads", "references")
+OPTIONAL_GROUPS = ("groups", "group_heads", "references")  # only in scans with --writer-group / --references
+MAIN_AXES = {"pairs": PAIR_AXES, "model_space": PAIR_AXES, "heads": HEAD_AXES, "groups": GROUP_PAIR_AXES,
+             "group_heads": GROUP_AXES, "references": HEAD_AXES}
 
 
 def datasets(group: str) -> dict[str, Dataset]:
@@ -104,18 +145,19 @@ def datasets(group: str) -> dict[str, Dataset]:
     return {d.name: d for d in SCHEMA if d.group == group}
 
 
-def empty(group: str, n_layers: int, n_heads: int, n_k: int, n_bins: int) -> dict[str, np.ndarray]:
+def empty(group: str, n_layers: int, n_heads: int, n_k: int, n_bins: int, n_groups: int = 0,
+          n_draws: int = 0) -> dict[str, np.ndarray]:
     """Arrays for every dataset of ``group``, filled with their not-computed values."""
-    return {d.name: np.full(d.shape(n_layers, n_heads, n_k, n_bins), d.fill, dtype=d.dtype)
+    return {d.name: np.full(d.shape(n_layers, n_heads, n_k, n_bins, n_groups, n_draws), d.fill, dtype=d.dtype)
             for d in datasets(group).values()}
 
 
-def unit_arrays(group: str, n: int, n_k: int, n_bins: int) -> dict[str, np.ndarray]:
+def unit_arrays(group: str, n: int, n_k: int, n_bins: int, n_draws: int = 0) -> dict[str, np.ndarray]:
     """Per-entry arrays ``{name: [n, trailing...]}`` for the datasets of ``group`` indexed by
     the group's full leading axes (what a work unit commits)."""
     out = {}
     for d in datasets(group).values():
-        trailing = {None: (), "k": (n_k,), "bins": (n_bins,)}[d.trailing]
+        trailing = {None: (), "k": (n_k,), "bins": (n_bins,), "draws": (n_draws,)}[d.trailing]
         out[d.name] = np.full((n,) + trailing, d.fill, dtype=d.dtype)
     return out
 
@@ -131,12 +173,12 @@ def tidy(group: str, arrays: dict[str, np.ndarray], ks, rows: np.ndarray) -> dic
     """
     rows = np.asarray(rows, dtype=np.int64)
     decl = datasets(group)
-    main = PAIR_AXES if group in ("pairs", "model_space") else HEAD_AXES
+    main = MAIN_AXES[group]
     rows = rows.reshape(-1, len(main))
     table = {axis: rows[:, i] for i, axis in enumerate(main)}
     sel = tuple(rows.T)
     for name, d in decl.items():
-        if name == "done" or name not in arrays or d.leading != main or d.trailing == "bins":
+        if name == "done" or name not in arrays or d.leading != main or d.trailing in ("bins", "draws"):
             continue
         values = np.asarray(arrays[name])[sel]
         if d.trailing == "k":
@@ -147,7 +189,9 @@ def tidy(group: str, arrays: dict[str, np.ndarray], ks, rows: np.ndarray) -> dic
     if main == PAIR_AXES:
         table["writer"] = np.array([f"{a}.{b}" for a, b in rows[:, :2]], dtype=str)
         table["responder"] = np.array([f"{a}.{b}" for a, b in rows[:, 2:]], dtype=str)
-    else:
+    elif main == GROUP_PAIR_AXES:
+        table["responder"] = np.array([f"{a}.{b}" for a, b in rows[:, 1:]], dtype=str)
+    elif main == HEAD_AXES:
         table["head_label"] = np.array([f"{a}.{b}" for a, b in rows], dtype=str)
     return table
 
@@ -157,7 +201,7 @@ def markdown_table() -> str:
     lines = ["| group | dataset | dtype | shape | fill | meaning |", "|---|---|---|---|---|---|"]
     for d in SCHEMA:
         short = {"writer_layer": "L", "writer_head": "H", "responder_layer": "L", "responder_head": "H",
-                 "layer": "L", "head": "H", "k": "k", "bins": "bins"}
+                 "layer": "L", "head": "H", "k": "k", "bins": "bins", "group": "G", "draws": "draws"}
         shape = "[" + ", ".join(short[a] for a in d.axes) + "]"
         fill = "NaN" if isinstance(d.fill, float) and np.isnan(d.fill) else str(d.fill)
         lines.append(f"| /{d.group} | {d.name} | {np.dtype(d.dtype).name} | {shape} | {fill} | {d.meaning} |")

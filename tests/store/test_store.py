@@ -68,6 +68,22 @@ def test_pair_stats_fields_are_declared_in_the_schema():
     assert isinstance(stats, PairStats)
 
 
+def test_groups_and_references_match_the_schema(model, tmp_path):
+    """A scan with a writer group and references holds every dataset of /groups, /group_heads and
+    /references with the schema's dtype and shape (G groups, the recorded draws). Common practice, no source."""
+    options = ScanOptions(writers="1", responders="2", writer_groups=("pair=0.0+1.1",), references=True,
+                          reference_draws=3)
+    scan = run_scan(model, tmp_path / "beyond.h5", options)
+    L, H, nk = scan.attrs["n_layers"], scan.attrs["n_heads"], len(scan.k)
+    with h5py.File(scan.path, "r") as f:
+        for d in schema.SCHEMA:
+            if d.group in schema.OPTIONAL_GROUPS:
+                data = f[d.group][d.name]
+                assert data.dtype == np.dtype(d.dtype), (d.group, d.name)
+                assert data.shape == d.shape(L, H, nk, scan.attrs["histogram_bins"], 1, 3), (d.group, d.name)
+    assert scan.group_names == ["pair"] and scan.groups["group_heads"]["done"].all()
+
+
 def test_scan_file_groups_match_the_schema_and_tidy_tables_carry_integers_and_intervals(scan):
     """A finished scan holds every schema dataset with the schema's dtype; its tidy tables have
     integer indices, the label strings, and per-k shares with their intervals.
@@ -75,8 +91,10 @@ def test_scan_file_groups_match_the_schema_and_tidy_tables_carry_integers_and_in
     Common practice, no source.
     """
     with h5py.File(scan.path, "r") as f:
+        assert not set(schema.OPTIONAL_GROUPS) & set(f)  # a scan without groups or references has neither
         for d in schema.SCHEMA:
-            assert f[d.group][d.name].dtype == np.dtype(d.dtype), (d.group, d.name)
+            if d.group not in schema.OPTIONAL_GROUPS:
+                assert f[d.group][d.name].dtype == np.dtype(d.dtype), (d.group, d.name)
         assert f.attrs["format_version"] == FORMAT_VERSION and f.attrs["status"] == "complete"
     table = scan.pairs()
     n = int(scan.done.sum())

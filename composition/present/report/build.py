@@ -195,8 +195,13 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
         tables = write_tables(scan, heads, candidates, comp, out / "tables", sampling.row())
         if mediation:
             tables["mediation"] = write_csv(out / "tables" / "mediation.csv", with_pair_ids(mediation))
+        if scan.group_names:
+            tables["group_pairs"] = write_csv(out / "tables" / "group_pairs.csv", scan.group_pairs())
+        if "references" in scan.groups:
+            tables["references"] = write_csv(out / "tables" / "references.csv", page.references_rows(scan))
         explorer = interactive.section(scan, heads, comp, maps, words, sampling)
         html = page.render(scan, heads, candidates, comp, figs, tables, out, words, sampling, explorer, mediation)
+        html = html.replace('<h2 id="pairs">', page.beyond_html(scan, words) + '<h2 id="pairs">', 1)
         index = out / "index.html"
         index.write_text(html, encoding="utf-8")
     except OSError as exc:

@@ -204,6 +204,69 @@ perfectly, so never call a pair mediated by a part with a small fraction.</p>
 """
 
 
+def references_rows(scan: Scan) -> list[dict]:
+    """One row per responder with references: identity, unembedding, the random band and its draws' mean."""
+    from ...compose.references import band
+
+    ref = scan.groups["references"]
+    rows = []
+    for l, h in np.argwhere(ref["done"]):
+        lo, hi = band(ref["random_mean_percentile"][l, h])
+        rows.append({"responder": f"{l}.{h}", "responder_layer": int(l), "responder_head": int(h),
+                     "identity_mean_percentile": float(ref["identity_mean_percentile"][l, h]),
+                     "unembedding_mean_percentile": float(ref["unembedding_mean_percentile"][l, h]),
+                     "random_band_low": float(lo), "random_band_high": float(hi),
+                     "random_mean": float(ref["random_mean_percentile"][l, h].mean())})
+    return rows
+
+
+def beyond_html(scan: Scan, words) -> str:
+    """The sections "Writer groups" and "Reference writers" (docs/groups.md), when the scan has them."""
+    from ...interpret.heads import HEAD_LABEL_WORDS
+
+    parts = []
+    referenced = "references" in scan.groups
+    if scan.group_names:
+        table = scan.group_pairs()
+        ov = scan.groups.get("group_heads", {})
+        members = scan.group_members
+        order = np.lexsort((-np.abs(table["mean_percentile"] - 0.5), table["group"]))
+        body = []
+        for i in order:
+            g = int(table["group"][i])
+            row = [_e(table["writer"][i]), _e("+".join(f"{l}.{h}" for l, h in members[table["writer"][i]])),
+                   _e(HEAD_LABEL_WORDS.get(int(ov["label"][g]), "not computed")) if ov else "",
+                   _e(table["responder"][i]), _chip(words.labels.get(int(table["label"][i]), "not computed"), int(table["label"][i])),
+                   _fmt(table["mean_percentile"][i]), _fmt_q(table["q_value"][i])]
+            if referenced:
+                row += [f"{table['above_generic'][i]:+.3f}", _fmt(table["random_z"][i], 1)]
+            body.append(row)
+        header = ["group", "members", "group OV", "responder", "label", "mean pct", "q-value"]
+        header += ["above generic", "random z"] if referenced else []
+        parts.append(f"""<h2 id="writer-groups">Writer groups</h2>
+<p class="muted">Each group is scanned as one writer whose write is the sum of its members' writes, each through
+its own path, against every selected responder in a later layer than all members; its labels and q-values are
+in the same Benjamini&ndash;Hochberg family as the pairs. Its OV label is that of the sum of its members' OV
+token matrices. A group labelled when no member is says the members' writes add coherently along what the
+responder reads, under the assumption that each member attends fully to the token; it does not say the members
+act together on real text (docs/groups.md).</p>
+{_table(header, body, text_cols=4)}
+""")
+    if referenced:
+        attrs = scan.group_attrs.get("references", {})
+        body = [[_e(r["responder"]), _fmt(r["identity_mean_percentile"]), _fmt(r["unembedding_mean_percentile"]),
+                 f"{_fmt(r['random_band_low'])}&ndash;{_fmt(r['random_band_high'])}"] for r in references_rows(scan)]
+        parts.append(f"""<h2 id="references">Reference writers</h2>
+<p class="muted">What each responder does with a generic write of the token: the token table row itself
+(identity), the token's unit unembedding direction (unembedding), and a band of {_e(attrs.get("draws"))} random
+writers with the spectrum of the model's own heads (seed {_e(attrs.get("seed"))}; 5th&ndash;95th percentile).
+A pair's <b>above generic</b> is how far its mean percentile goes beyond both generic writes (0 when one goes as
+far); a pair inside the random band is not told apart from a random head's write (docs/groups.md §3).</p>
+{_table(["responder", "identity", "unembedding", "random band"], body)}
+""")
+    return "".join(parts)
+
+
 def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, figs: list, tables: dict,
            out: Path, words, sampling, explorer: str, mediation=()) -> str:
     a = scan.attrs
@@ -245,13 +308,17 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
         verbs = {"copying": "copies", "suppressing": "suppresses", "neutral": "neutral"}
         lines = []
         for r in c.writers[:8]:
-            i = (*map(int, r["writer"].split(".")), *c.head)
+            if r["writer"] in scan.group_names:  # a writer group (docs/groups.md): its own arrays
+                arrays, i = scan.groups["groups"], (scan.group_names.index(r["writer"]), *c.head)
+            else:
+                arrays, i = scan.arrays, (*map(int, r["writer"].split(".")), *c.head)
             lines.append(
                 f'<span class="mono">{_e(r["writer"])}</span> &middot; mean pct '
-                f'{_interval(r["mean_percentile"], scan.mean_ci_low[i], scan.mean_ci_high[i])} &middot; '
-                f'q {_fmt_q(r["q_value"])} &middot; rows {int(scan.rows_evaluated[i]):,} &middot; writer '
+                f'{_interval(r["mean_percentile"], arrays["mean_ci_low"][i], arrays["mean_ci_high"][i])} &middot; '
+                f'q {_fmt_q(r["q_value"])} &middot; rows {int(arrays["rows_evaluated"][i]):,} &middot; writer '
                 f'{verbs.get(r["writer_ov"], r["writer_ov"])} &middot; {_chip(r["prediction"])} '
-                f'&middot; Q-comp {_fmt(r["q_composition"])} (z {_fmt(r["q_composition_z"], 1)})')
+                f'&middot; Q-comp {_fmt(r["q_composition"])} (z {_fmt(r["q_composition_z"], 1)})'
+                + (f' &middot; above generic {r["above_generic"]:+.3f}' if "above_generic" in r else ""))
         writers = "<br>".join(lines)
         if len(c.writers) > 8:
             writers += f"<br>\u2026 and {len(c.writers) - 8} more (shortlist.csv)"

@@ -20,7 +20,10 @@ INTERVALS = ("ci_low", "ci_high", "bottom_ci_low", "bottom_ci_high")  # [..., nk
 
 
 def _split(label: str) -> tuple[int, int]:
-    layer, head = str(label).split(".")
+    """A head label ``L.H`` as integers; a writer group's NAME as ``(-1, -1)`` (docs/groups.md)."""
+    layer, _, head = str(label).partition(".")
+    if not (layer.isdigit() and head.isdigit()):
+        return -1, -1
     return int(layer), int(head)
 
 
