@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import CompositionError
-from ..store.scanfile import CAUTION, Scan, load_scan
+from ..store.scanfile import CAUTION, Scan, load_scan, require_complete
 
 RESPONSE_WORDS = {1: "attention-raising", -1: "attention-lowering", 0: "neutral"}
 
@@ -207,7 +207,7 @@ def compare_scans(paths, names: list[str] | None = None) -> Comparison:
     paths = [Path(p) for p in paths]
     if len(paths) < 2:
         raise CompositionError("compare needs two or more scan files.")
-    scans = [load_scan(p, complete_only=True) for p in paths]
+    scans = [require_complete(load_scan(p), "compare") for p in paths]
     _check_alike(scans)
     if names is None:
         names = [p.stem for p in paths]

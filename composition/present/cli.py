@@ -274,7 +274,7 @@ def shortlist(scan_file, heads_file, csv_file, parts):
     from .report import load_report_inputs
     from .report.csvfiles import write_csv
 
-    scan_data, head_data = load_report_inputs(scan_file, heads_file)
+    scan_data, head_data = load_report_inputs(scan_file, heads_file, "shortlist")
     candidates = make_shortlist(scan_data, head_data)
     _echo(terminal.shortlist(candidates, scan_data))
     if parts:
@@ -335,6 +335,12 @@ def pair(checkpoint, writer, responder, tokens, top, scan_file, csv_file, figure
     if figure_file and not str(figure_file).lower().endswith((".png", ".svg")):
         raise CompositionError(f"--figure {figure_file} must end in .png or .svg.")
     w, offsets = _load(checkpoint, kw)
+    if scan_file:  # refuse a scan of another model (or an unfinished one) before computing anything
+        from ..store.scanfile import check_matches
+        from .report import load_report_inputs
+
+        scan_data, head_data = load_report_inputs(scan_file, command="pair --scan")
+        check_matches(scan_data, w)
     opt.check_for_model(ScanOptions(k=kw["ks"]), w.vocab_size)
     vocab = load_vocabulary(checkpoint_directory(checkpoint), w.vocab_size)
     chosen = resolve_tokens([t for t in (tokens or "").split(",") if t != ""], vocab, w.vocab_size)
@@ -343,9 +349,7 @@ def pair(checkpoint, writer, responder, tokens, top, scan_file, csv_file, figure
     scan_lines = []
     if scan_file:
         from ..interpret.predict import pair_prediction
-        from .report import load_report_inputs
 
-        scan_data, head_data = load_report_inputs(scan_file)
         check_scan(scan_data, detail, w)
         scan_lines = terminal.scan_prediction(scan_file, pair_prediction(scan_data, head_data, u, r), scan_data)
     _echo(terminal.pair(detail, kw["ks"], kw["table"], kw["orientation"], top, chosen, w.readout, scan_lines))

@@ -14,6 +14,7 @@ import pytest
 from click.testing import CliRunner
 
 from composition.present.cli import main
+from composition.store.scanfile import load_scan
 
 from ..conftest import random_gpt2
 
@@ -169,3 +170,80 @@ def test_largest_accepted_rotary_span_and_seed_are_accepted_by_the_option_checks
     assert options.seed(str(2**63 - 1)) == 2**63 - 1
     assert options.ks("10,1,5,5") == (1, 5, 10)
     options.ScanOptions(rows=5, seed=3, until_ci=0.5, rotary_offsets=(0, 99999)).validate()
+
+
+def _partial_scan(model, out):
+    """A scan stopped after its first committed unit: an in-progress scan file."""
+    from composition.run.scan import run_scan
+
+    def crash(event):
+        if event.kind == "unit":
+            raise RuntimeError("stop")
+
+    with pytest.raises(RuntimeError):
+        run_scan(model, out, progress=crash)
+    assert not load_scan(out).complete
+
+
+def _files(directory):
+    return sorted(p.relative_to(directory).as_posix() for p in directory.rglob("*"))
+
+
+@pytest.mark.parametrize("command", ["shortlist", "report", "compare"])
+def test_commands_that_read_a_scan_refuse_an_unfinished_one(small_model, tmp_path, command):
+    """shortlist, report and compare refuse an in-progress scan (issue 11 item 6): one sentence on
+    stderr naming the command and the file, exit status 2, nothing written.
+    Common practice, no source"""
+    path, _, _ = small_model
+    scan = tmp_path / "partial.h5"
+    _partial_scan(path, scan)
+    before = _files(tmp_path)
+    args = {"shortlist": ["shortlist", scan, "--csv", tmp_path / "s.csv"],
+            "report": ["report", scan, "--out", tmp_path / "report"],
+            "compare": ["compare", scan, scan, "--out", tmp_path / "cmp"]}[command]
+    result = _run(*args)
+    assert result.exit_code == 2, result.output + result.stderr
+    _assert_one_sentence(result, "unfinished scan", str(scan), "run the same scan command again")
+    assert f"{command} needs a finished scan" in result.stderr
+    assert result.stdout == ""
+    assert _files(tmp_path) == before
+
+
+def test_pair_refuses_a_scan_of_another_model(small_model, tmp_path):
+    """pair --scan checks the scan's fingerprint against the checkpoint before computing: the same
+    tensors read under another activation are refused in one sentence naming what changed, exit
+    status 2, no CSV or figure written; the matching checkpoint is accepted.
+    Common practice, no source"""
+    path, _, _ = small_model
+    scan = tmp_path / "scan.h5"
+    done = _run("scan", path, "--out", scan, "--writers", "0", "--responders", "1", "-q")
+    assert done.exit_code == 0, done.output + done.stderr
+    other = tmp_path / "relu"
+    other.mkdir()
+    for f in os.listdir(path):
+        (other / f).write_bytes(open(os.path.join(path, f), "rb").read())
+    config = json.loads((other / "config.json").read_text())
+    config["activation_function"] = "relu"
+    (other / "config.json").write_text(json.dumps(config))
+    before = _files(tmp_path)
+    result = _run("pair", other, "0.1", "1.2", "--scan", scan, "--csv", tmp_path / "p.csv",
+                  "--figure", tmp_path / "p.png")
+    assert result.exit_code == 2, result.output + result.stderr
+    _assert_one_sentence(result, str(scan), "activation changed from gelu-tanh to relu")
+    assert result.stdout == "" and _files(tmp_path) == before
+    same = _run("pair", path, "0.1", "1.2", "--scan", scan, "--top", "2")
+    assert same.exit_code == 0, same.output + same.stderr
+    assert "0.1" in same.output and str(scan) in same.output
+
+
+def test_pair_refuses_an_unfinished_scan(small_model, tmp_path):
+    """pair --scan on an in-progress scan: one sentence, exit status 2, nothing written.
+    Common practice, no source"""
+    path, _, _ = small_model
+    scan = tmp_path / "partial.h5"
+    _partial_scan(path, scan)
+    before = _files(tmp_path)
+    result = _run("pair", path, "0.1", "1.2", "--scan", scan, "--csv", tmp_path / "p.csv")
+    assert result.exit_code == 2
+    _assert_one_sentence(result, "pair --scan needs a finished scan", str(scan))
+    assert _files(tmp_path) == before

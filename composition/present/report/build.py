@@ -26,7 +26,7 @@ from ...errors import CompositionError
 from ...interpret.heads import KINDS, HeadData, load_heads
 from ...compose import sides
 from ...interpret.predict import scan_compensation, shortlist, side_notes
-from ...store.scanfile import Scan, load_scan
+from ...store.scanfile import Scan, load_scan, require_complete
 from . import figures as fg
 from .csvfiles import write_csv
 from .tables import with_pair_ids, write_tables
@@ -142,10 +142,14 @@ def sampling_info(scan: Scan) -> SamplingInfo:
     return SamplingInfo(sampled, V, rows, int(opts.get("seed", 0)) if sampled else None, looks, until, lo, hi)
 
 
-def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLike | None = None
-                       ) -> tuple[Scan, HeadData]:
-    """The scan and its head data (from the scan file, or from a separate heads file)."""
-    scan = load_scan(scan_path)
+def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLike | None = None,
+                       command: str | None = None) -> tuple[Scan, HeadData]:
+    """The scan and its head data (from the scan file, or from a separate heads file).
+
+    An in-progress scan is refused with a sentence naming ``command`` (labels, head profiles and
+    model-space scores exist only once the whole scan is done).
+    """
+    scan = require_complete(load_scan(scan_path), command)
     source = heads_path or scan_path
     heads = load_heads(source)
     if heads is None:
@@ -172,7 +176,7 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
     from ...interpret.predict import mediation_rows
     from . import interactive, page
 
-    scan, heads = load_report_inputs(scan_path, heads_path)
+    scan, heads = load_report_inputs(scan_path, heads_path, "report")
     parts = {}
     for path in part_paths:
         part = load_scan(path)
