@@ -247,3 +247,49 @@ def test_pair_refuses_an_unfinished_scan(small_model, tmp_path):
     assert result.exit_code == 2
     _assert_one_sentence(result, "pair --scan needs a finished scan", str(scan))
     assert _files(tmp_path) == before
+
+
+def test_compare_of_key_side_scans_uses_the_key_sides_words(small_model, tmp_path):
+    """compare takes its label words from the sides registry for the scans' side: a comparison of
+    key-side scans writes the key side's words, never the query side's (issue 10). The scans are
+    copies of one key-side scan, so every label is unchanged and the tidy table holds each pair's
+    own label. Common practice, no source"""
+    import csv
+    import shutil
+
+    from composition.compose import sides
+
+    path, _, _ = small_model
+    first = tmp_path / "k1.h5"
+    done = _run("scan", path, "--out", first, "--side", "key", "--writers", "0", "--responders", "1",
+                "--fdr", "0.2", "--min-effect", "0.01", "-q")
+    assert done.exit_code == 0, done.output + done.stderr
+    shutil.copy(first, tmp_path / "k2.h5")
+    result = _run("compare", first, tmp_path / "k2.h5", "--out", tmp_path / "cmp")
+    assert result.exit_code == 0, result.output + result.stderr
+    scan = load_scan(first)
+    words = sides.get("key").words
+    rows = list(csv.DictReader(open(tmp_path / "cmp" / "pairs_by_scan.csv")))
+    codes = [int(scan.label[int(r["writer_layer"]), int(r["writer_head"]), int(r["responder_layer"]),
+                            int(r["responder_head"])]) for r in rows]
+    assert {1, -1} <= set(codes)  # the test means something only with labelled pairs of both signs
+    assert [r["label"] for r in rows] == [words[c] for c in codes]
+    query = sides.get("query").words
+    assert not {query.raising, query.lowering} & {r["label"] for r in rows}
+
+
+def test_terminal_label_words_come_from_their_homes(monkeypatch):
+    """The shortlist header and the mediation note take the pair words from the sides registry and
+    the head words from interpret/heads.py (issue 10: label words in one home): renaming them there
+    renames them in the terminal. Common practice, no source"""
+    from composition.compose import sides
+    from composition.compose.sides import Words
+    from composition.interpret import heads
+    from composition.present import terminal
+
+    monkeypatch.setattr(sides.get("query"), "words", Words("up-word", "down-word", "flat-word", "m."))
+    monkeypatch.setitem(heads.HEAD_LABEL_WORDS, 1, "copy-word")
+    monkeypatch.setitem(heads.HEAD_LABEL_WORDS, -1, "suppress-word")
+    header = terminal.shortlist([])[0]
+    assert "(suppress-word, up-word)" in header and "(copy-word, down-word)" in header
+    assert "bottom-k share for down-word pairs" in "\n".join(terminal.mediation([], []))
