@@ -19,6 +19,16 @@ ACTIVATIONS = {"gelu_new": "gelu-tanh", "gelu_pytorch_tanh": "gelu-tanh", "gelu_
 CACHE_BYTES = 2 << 30  # layers kept in memory at once (float32 bytes)
 
 
+def family_matches(config: dict, model_types: tuple[str, ...], architectures: tuple[str, ...],
+                   excluded: tuple[str, ...] = ()) -> bool:
+    """Whether the config's ``model_type`` is one of ``model_types``, or one of its ``architectures``
+    starts with one of ``architectures`` but with none of ``excluded``."""
+    return config.get("model_type") in model_types or any(
+        str(a).startswith(architectures) and not (excluded and str(a).startswith(excluded))
+        for a in config.get("architectures", []) or []
+    )
+
+
 def config_int(config: dict, family: str, *keys: str, default=None) -> int:
     """The first of ``keys`` present in the config, as a positive int (an integral number only)."""
     for key in keys:
@@ -98,16 +108,17 @@ def positive_float(value, what: str) -> float:
     return v
 
 
-def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int]:
-    """``(d, H, L, V, dh)`` from the usual config names (``hidden_size``, ``num_attention_heads``,
-    ``num_hidden_layers``, ``vocab_size``), with the head width ``d / H``."""
+def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int, int]:
+    """``(d, H, L, V, dh, m)`` from the usual config names (``hidden_size``, ``num_attention_heads``,
+    ``num_hidden_layers``, ``vocab_size``, ``intermediate_size``), with the head width ``d / H`` and
+    the MLP width ``4 d`` by default."""
     d = config_int(config, family, "hidden_size")
     H = config_int(config, family, "num_attention_heads")
     L = config_int(config, family, "num_hidden_layers")
     V = config_int(config, family, "vocab_size")
     if d % H:
         raise CompositionError(f"the config's hidden_size={d} is not divisible by num_attention_heads={H}.")
-    return d, H, L, V, d // H
+    return d, H, L, V, d // H, config_int(config, family, "intermediate_size", default=4 * d)
 
 
 def activation(config: dict, key: str, default: str) -> str:

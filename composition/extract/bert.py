@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from ..errors import CompositionError
 from .weights import Attention, Layer, Norm, Weights
-from ._build import (activation, assemble, config_int, config_sizes, layernorm, linear_heads, linear_mlp, prefixed,
+from ._build import (activation, assemble, config_sizes, family_matches, layernorm, linear_heads, linear_mlp, prefixed,
                      unembedding)
 from .files import TensorSource
 
@@ -24,15 +24,12 @@ _IDENTITY = Norm("identity", None, None)
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") == "bert" or any(
-        str(a).startswith("Bert") for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, ("bert",), ("Bert",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:
     fam = "BERT-style"
-    d, H, L, V, dh = config_sizes(config, fam)
-    m = config_int(config, fam, "intermediate_size", default=4 * d)
+    d, H, L, V, dh, m = config_sizes(config, fam)
     eps = float(config.get("layer_norm_eps", 1e-12))
     act = activation(config, "hidden_act", "gelu")
     kind = config.get("position_embedding_type", "absolute") or "absolute"

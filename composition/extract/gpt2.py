@@ -12,14 +12,12 @@ import torch
 from ..errors import CompositionError
 from .weights import MLP, Attention, Layer, Weights
 from ._build import ACTIVATIONS as _ACTIVATIONS
-from ._build import assemble, layernorm, prefixed, unembedding
+from ._build import assemble, family_matches, layernorm, prefixed, unembedding
 from .files import TensorSource
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") == "gpt2" or any(
-        str(a).startswith("GPT2") for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, ("gpt2",), ("GPT2",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:

@@ -15,17 +15,15 @@ import torch
 from ..errors import CompositionError
 from .rotary import rotary_from_config
 from .weights import Attention, Layer, Norm, Weights
-from ._build import activation, assemble, config_int, expand_kv, linear_heads, linear_mlp, prefixed, unembedding
+from ._build import (activation, assemble, config_int, expand_kv, family_matches, linear_heads, linear_mlp, prefixed,
+                     unembedding)
 from .files import TensorSource
 
 MODEL_TYPES = ("llama", "mistral", "qwen2")
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") in MODEL_TYPES or any(
-        str(a).startswith(("Llama", "Mistral", "Qwen2F", "Qwen2M")) and not str(a).startswith("Qwen2Moe")
-        for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, MODEL_TYPES, ("Llama", "Mistral", "Qwen2F", "Qwen2M"), excluded=("Qwen2Moe",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:

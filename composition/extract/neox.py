@@ -13,21 +13,18 @@ import torch
 
 from .rotary import rotary_from_config
 from .weights import Attention, Layer, Weights
-from ._build import activation, assemble, config_int, config_sizes, layernorm, linear_mlp, prefixed, unembedding
+from ._build import (activation, assemble, config_sizes, family_matches, layernorm, linear_mlp, prefixed,
+                     unembedding)
 from .files import TensorSource
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") == "gpt_neox" or any(
-        str(a).startswith("GPTNeoX") and not str(a).startswith("GPTNeoXJapanese")
-        for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, ("gpt_neox",), ("GPTNeoX",), excluded=("GPTNeoXJapanese",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:
     fam = "GPT-NeoX"
-    d, H, L, V, dh = config_sizes(config, fam)
-    m = config_int(config, fam, "intermediate_size", default=4 * d)
+    d, H, L, V, dh, m = config_sizes(config, fam)
     eps = float(config.get("layer_norm_eps", 1e-5))
     act = activation(config, "hidden_act", "gelu")
     bias = bool(config.get("attention_bias", True))
