@@ -309,16 +309,8 @@ def _empty_background(ax, n_rows: int, n_cols: int) -> None:
 
 
 def _save_fixed(fig, layout: "_Layout", out_dir: Path, stem: str, svg: bool = True) -> tuple[dict[str, Path], tuple]:
-    """Write a fixed-layout figure: PNG (palette-quantised, small) and SVG, one draw each."""
-    paths = {}
-    for ext in ("png", "svg") if svg else ("png",):
-        p = out_dir / f"{stem}.{ext}"
-        fig.savefig(p, dpi=PNG_DPI if ext == "png" else None, facecolor="white")
-        paths[ext] = p
-    _quantise(paths["png"])
-    _, plt = _mpl()
-    plt.close(fig)
-    return paths, layout.extent()
+    """Write a fixed-layout figure: PNG (palette-quantised, small) and SVG, one draw each; and its extent."""
+    return _save(fig, out_dir, stem, svg), layout.extent()
 
 
 def _quantise(path: Path) -> None:
