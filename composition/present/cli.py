@@ -19,7 +19,7 @@ from ..compose import sides
 from ..errors import CompositionError
 from ..options import ScanOptions
 from ..run.interrupts import ScanInterrupted
-from ..run.progress import ProgressPrinter
+from ..run.progress import ProgressPrinter, counter
 from ..run.scan import run_scan
 from ..store.scanfile import CAUTION, load_scan
 from . import terminal
@@ -235,22 +235,19 @@ def heads(checkpoint, out, into, baseline_draws, all_heads, overwrite, **kw):
     if (out is None) == (into is None):
         raise CompositionError("give exactly one of --out FILE.h5 (a heads file) and --into SCAN.h5.")
     start = time.monotonic()
-    show = sys.stderr.isatty()
-
-    def progress(done, total):
-        if show:
-            click.echo(f"\r  heads {done}/{total}  {time.monotonic() - start:6.1f} s", err=True, nl=False)
-
     w, _ = _load(checkpoint, kw)
-    if into is not None:
-        path = add_to_scan(into, w, draws=baseline_draws, progress=progress, all_heads=all_heads)
-    else:
-        opt.check_for_model(ScanOptions(k=kw["ks"]), w.vocab_size)
-        table = TableOptions(kw["table"], kw["position"])
-        path = write_heads_file(out, w, token_table(w, table), table, kw["ks"], kw["fdr"], kw["min_effect"],
-                                baseline_draws, overwrite=overwrite, progress=progress)
-    if show:
-        click.echo("", err=True)
+    printer = ProgressPrinter(sys.stderr)  # one status line with rate and ETA, as the scan's final phase
+    progress = counter(printer, "heads", float(w.vocab_size) ** 2)  # a head profile ranks V x V entries
+    try:
+        if into is not None:
+            path = add_to_scan(into, w, draws=baseline_draws, progress=progress, all_heads=all_heads)
+        else:
+            opt.check_for_model(ScanOptions(k=kw["ks"]), w.vocab_size)
+            table = TableOptions(kw["table"], kw["position"])
+            path = write_heads_file(out, w, token_table(w, table), table, kw["ks"], kw["fdr"], kw["min_effect"],
+                                    baseline_draws, overwrite=overwrite, progress=progress)
+    finally:
+        printer.close()
     data = load_heads(path)
     profiled = terminal.head_profiles(data, w.readout)
     click.echo(f"head profiles and model-space scores of every pair in {time.monotonic() - start:.1f} s; wrote {path}")
