@@ -16,13 +16,7 @@ from click.testing import CliRunner
 
 from composition.run.progress import ProgressPrinter, ScanProgress, counter, status_line
 from composition.run.scan import run_scan
-from ..small_checkpoint import build_small_gpt2, one_torch_thread
-
-
-@pytest.fixture(scope="module")
-def model(tmp_path_factory):
-    with one_torch_thread():
-        yield build_small_gpt2(tmp_path_factory.mktemp("progress-model"), seed=0)
+from ..small_checkpoint import model, one_thread  # noqa: F401 (module fixtures)
 
 
 def test_final_phase_eta_is_paced_on_its_own_cost():
