@@ -10,6 +10,7 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 
 def random_gpt2(directory, seed=0, V=300, d=64, H=4, L=3, P=32, activation="gelu_new",
@@ -76,3 +77,66 @@ def one_torch_thread():
         yield
     finally:
         torch.set_num_threads(before)
+
+
+# --- module fixtures: a module that scans the small model imports them by name ---------------
+# (``from ..small_checkpoint import model, one_thread``); pytest then uses them in that module only.
+
+@pytest.fixture(scope="module", autouse=True)
+def one_thread():
+    """One torch thread for every test of a module that imports this fixture."""
+    with one_torch_thread():
+        yield
+
+
+@pytest.fixture(scope="module")
+def model(tmp_path_factory):
+    """The small model of ``build_small_gpt2`` (seed 0), built once per module."""
+    return build_small_gpt2(tmp_path_factory.mktemp("small-model"), seed=0)
+
+
+def plant(path: Path, kind: str, victim: Path) -> None:
+    """Put a ``symlink`` (to ``victim``), ``fifo``, ``directory`` or ``device`` node (a character device,
+    /dev/null's numbers) at ``path``, as an adversary would at an output path; a device node needs root,
+    so without it the test is skipped."""
+    import stat
+
+    if kind == "symlink":
+        path.symlink_to(victim)
+    elif kind == "fifo":
+        os.mkfifo(path)
+    elif kind == "directory":
+        path.mkdir()
+    else:
+        if os.geteuid() != 0:
+            pytest.skip("making a device node needs root")
+        os.mknod(path, 0o600 | stat.S_IFCHR, os.makedev(1, 3))
+
+
+def random_numpy_sd(cfg, seed=0, prefix="", qkv_bias_std=0.1, untied=False):
+    """A random GPT-2-layout state dict (float32 NumPy arrays) with non-trivial biases and norms;
+    ``qkv_bias_std``: the spread of the fused query/key/value bias; ``untied``: with its own
+    ``lm_head.weight`` (no prefix), drawn last."""
+    rng = np.random.default_rng(seed)
+    d, L, V, P = cfg["n_embd"], cfg["n_layer"], cfg["vocab_size"], cfg["n_positions"]
+    m = cfg.get("n_inner") or 4 * d
+    sd = {"wte.weight": rng.normal(0, 0.5, (V, d)),
+          "wpe.weight": rng.normal(0, 0.3, (P, d)),
+          "ln_f.weight": 1 + rng.normal(0, 0.2, d),
+          "ln_f.bias": rng.normal(0, 0.1, d)}
+    for i in range(L):
+        for ln in ("ln_1", "ln_2"):
+            sd[f"h.{i}.{ln}.weight"] = 1 + rng.normal(0, 0.2, d)
+            sd[f"h.{i}.{ln}.bias"] = rng.normal(0, 0.1, d)
+        sd[f"h.{i}.attn.c_attn.weight"] = rng.normal(0, 0.3, (d, 3 * d))
+        sd[f"h.{i}.attn.c_attn.bias"] = rng.normal(0, qkv_bias_std, 3 * d)
+        sd[f"h.{i}.attn.c_proj.weight"] = rng.normal(0, 0.1, (d, d))
+        sd[f"h.{i}.attn.c_proj.bias"] = rng.normal(0, 0.1, d)
+        sd[f"h.{i}.mlp.c_fc.weight"] = rng.normal(0, 0.2, (d, m))
+        sd[f"h.{i}.mlp.c_fc.bias"] = rng.normal(0, 0.1, m)
+        sd[f"h.{i}.mlp.c_proj.weight"] = rng.normal(0, 0.1, (m, d))
+        sd[f"h.{i}.mlp.c_proj.bias"] = rng.normal(0, 0.1, d)
+    out = {prefix + k: v.astype(np.float32) for k, v in sd.items()}
+    if untied:
+        out["lm_head.weight"] = rng.normal(0, 0.5, (V, d)).astype(np.float32)
+    return out

@@ -1,5 +1,6 @@
-"""Pieces every family reader shares: config lookups, weight re-orientation, grouped-query
-expansion and lazily loaded layers."""
+"""Pieces every family reader shares: config lookups, prefixed tensor names, LayerNorms,
+nn.Linear MLPs, the unembedding, weight re-orientation, grouped-query expansion, lazily
+loaded layers and the assembled ``Weights``."""
 
 from __future__ import annotations
 
@@ -11,11 +12,21 @@ from dataclasses import fields
 import torch
 
 from ..errors import CompositionError
-from .weights import Layer
+from .weights import MLP, Layer, Norm, Weights
 
 ACTIVATIONS = {"gelu_new": "gelu-tanh", "gelu_pytorch_tanh": "gelu-tanh", "gelu_fast": "gelu-tanh",
                "gelu": "gelu", "relu": "relu", "silu": "silu", "swish": "silu"}
 CACHE_BYTES = 2 << 30  # layers kept in memory at once (float32 bytes)
+
+
+def family_matches(config: dict, model_types: tuple[str, ...], architectures: tuple[str, ...],
+                   excluded: tuple[str, ...] = ()) -> bool:
+    """Whether the config's ``model_type`` is one of ``model_types``, or one of its ``architectures``
+    starts with one of ``architectures`` but with none of ``excluded``."""
+    return config.get("model_type") in model_types or any(
+        str(a).startswith(architectures) and not (excluded and str(a).startswith(excluded))
+        for a in config.get("architectures", []) or []
+    )
 
 
 def config_int(config: dict, family: str, *keys: str, default=None) -> int:
@@ -97,16 +108,17 @@ def positive_float(value, what: str) -> float:
     return v
 
 
-def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int]:
-    """``(d, H, L, V, dh)`` from the usual config names (``hidden_size``, ``num_attention_heads``,
-    ``num_hidden_layers``, ``vocab_size``), with the head width ``d / H``."""
+def config_sizes(config: dict, family: str) -> tuple[int, int, int, int, int, int]:
+    """``(d, H, L, V, dh, m)`` from the usual config names (``hidden_size``, ``num_attention_heads``,
+    ``num_hidden_layers``, ``vocab_size``, ``intermediate_size``), with the head width ``d / H`` and
+    the MLP width ``4 d`` by default."""
     d = config_int(config, family, "hidden_size")
     H = config_int(config, family, "num_attention_heads")
     L = config_int(config, family, "num_hidden_layers")
     V = config_int(config, family, "vocab_size")
     if d % H:
         raise CompositionError(f"the config's hidden_size={d} is not divisible by num_attention_heads={H}.")
-    return d, H, L, V, d // H
+    return d, H, L, V, d // H, config_int(config, family, "intermediate_size", default=4 * d)
 
 
 def activation(config: dict, key: str, default: str) -> str:
@@ -114,6 +126,73 @@ def activation(config: dict, key: str, default: str) -> str:
     if not isinstance(name, str) or name not in ACTIVATIONS:
         raise CompositionError(f"the config's {key} {name!r} is not supported (supported: {', '.join(ACTIVATIONS)}).")
     return ACTIVATIONS[name]
+
+
+def prefixed(src, prefix: str, probe: str) -> tuple[str, Callable[[str, tuple], torch.Tensor]]:
+    """``(pre, get)``: ``pre`` is ``prefix`` when the checkpoint has ``prefix + probe``, else empty
+    (exports with and without the model's prefix read the same); ``get(name, shape)`` is ``src.get``
+    of ``pre + name``."""
+    pre = prefix if src.has(prefix + probe) else ""
+
+    def get(name: str, shape: tuple) -> torch.Tensor:
+        return src.get(pre + name, shape)
+
+    return pre, get
+
+
+def layernorm(get, name: str, d: int, eps: float) -> Norm:
+    """The LayerNorm ``name`` (``name.weight``, ``name.bias``, both ``[d]``)."""
+    return Norm("layernorm", get(f"{name}.weight", (d,)), get(f"{name}.bias", (d,)), eps)
+
+
+def linear_mlp(get, up: str, down: str, d: int, m: int, act: str, gate: str | None = None,
+               bias: bool = True) -> MLP:
+    """An MLP of ``nn.Linear`` layers (weights out x in) named ``up``, ``down`` and, when gated,
+    ``gate``; without ``bias`` the biases are zero (and the gate has none).
+
+    # up.weight [m, d], down.weight [d, m], gate.weight [m, d] -> W_in [d, m], W_out [m, d], W_gate [d, m]
+    """
+    def b(name: str, n: int) -> torch.Tensor:
+        return get(name + ".bias", (n,)) if bias else torch.zeros(n)
+
+    return MLP(
+        W_in=get(up + ".weight", (m, d)).T.contiguous(),  # [d, m]
+        b_in=b(up, m),
+        W_out=get(down + ".weight", (d, m)).T.contiguous(),  # [m, d]
+        b_out=b(down, d),
+        activation=act,
+        W_gate=get(gate + ".weight", (m, d)).T.contiguous() if gate else None,  # [d, m]
+        b_gate=b(gate, m) if gate and bias else None,
+    )
+
+
+def unembedding(src, names: Sequence[str], W_E: torch.Tensor, tie: bool, missing: str | None = None):
+    """``(W_U, readout)`` from the first of ``names`` the checkpoint holds (``tied`` when it equals the
+    embedding, else ``lm-head``); else the embedding (``tied``) when ``tie``; else a CompositionError
+    saying ``missing``, or None when ``missing`` is None.
+
+    # W_E [V, d] -> W_U [d, V]
+    """
+    V, d = W_E.shape
+    name = next((n for n in names if src.has(n)), None)
+    if name is not None:
+        W_U = src.get(name, (V, d)).T.contiguous()  # [d, V]
+        return W_U, "tied" if torch.equal(W_U.T, W_E) else "lm-head"
+    if tie:
+        return W_E.T.contiguous(), "tied"  # [d, V]
+    if missing is not None:
+        raise CompositionError(missing)
+    return None
+
+
+def assemble(family: str, src, config: dict, W_E: torch.Tensor, unembed: tuple, final_norm: Norm, n_layers: int,
+             load_layer: Callable[[int], Layer], **rest) -> Weights:
+    """The reader's ``Weights``: layers loaded lazily, the source and config recorded; ``unembed`` is
+    ``(W_U, readout)``; ``rest``: any other field of ``Weights`` (``W_pos`` defaults to None)."""
+    W_U, readout = unembed
+    rest.setdefault("W_pos", None)
+    return Weights(family=family, W_E=W_E, W_U=W_U, readout=readout, final_norm=final_norm,
+                   layers=LazyLayers(n_layers, load_layer), source=str(src.path), config=dict(config), **rest)
 
 
 def linear_heads(w: torch.Tensor, n: int) -> torch.Tensor:

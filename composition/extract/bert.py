@@ -14,38 +14,31 @@ so); without a head, the input embedding, and said so.
 
 from __future__ import annotations
 
-import torch
-
 from ..errors import CompositionError
-from .weights import MLP, Attention, Layer, Norm, Weights
-from ._build import LazyLayers, activation, config_int, config_sizes, linear_heads
+from .weights import Attention, Layer, Norm, Weights
+from ._build import (activation, assemble, config_sizes, family_matches, layernorm, linear_heads, linear_mlp, prefixed,
+                     unembedding)
 from .files import TensorSource
 
 _IDENTITY = Norm("identity", None, None)
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") == "bert" or any(
-        str(a).startswith("Bert") for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, ("bert",), ("Bert",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:
     fam = "BERT-style"
-    d, H, L, V, dh = config_sizes(config, fam)
-    m = config_int(config, fam, "intermediate_size", default=4 * d)
+    d, H, L, V, dh, m = config_sizes(config, fam)
     eps = float(config.get("layer_norm_eps", 1e-12))
     act = activation(config, "hidden_act", "gelu")
     kind = config.get("position_embedding_type", "absolute") or "absolute"
     if kind != "absolute":
         raise CompositionError(f"the config's position_embedding_type {kind!r} is not supported (only 'absolute').")
-    pre = "bert." if src.has("bert.embeddings.word_embeddings.weight") else ""
+    pre, get = prefixed(src, "bert.", "embeddings.word_embeddings.weight")
 
-    def get(name, shape):
-        return src.get(pre + name, shape)
-
-    def norm(name, prefix=pre):
-        return Norm("layernorm", src.get(prefix + name + ".weight", (d,)), src.get(prefix + name + ".bias", (d,)), eps)
+    def norm(name):
+        return layernorm(get, name, d, eps)
 
     def load_layer(i: int) -> Layer:
         p = f"encoder.layer.{i}."
@@ -55,13 +48,7 @@ def read(src: TensorSource, config: dict) -> Weights:
         W_O = get(p + "attention.output.dense.weight", (d, d)).T.reshape(H, dh, d).contiguous()  # [H, dh, d]
         attn = Attention(W["query"], W["key"], W["value"], W_O, b["query"], b["key"], b["value"],
                          get(p + "attention.output.dense.bias", (d,)), kv_heads=H)
-        mlp = MLP(
-            W_in=get(p + "intermediate.dense.weight", (m, d)).T.contiguous(),  # [d, m]
-            b_in=get(p + "intermediate.dense.bias", (m,)),
-            W_out=get(p + "output.dense.weight", (d, m)).T.contiguous(),  # [m, d]
-            b_out=get(p + "output.dense.bias", (d,)),
-            activation=act,
-        )
+        mlp = linear_mlp(get, p + "intermediate.dense", p + "output.dense", d, m, act)
         return Layer(norm(p + "attention.output.LayerNorm"), attn, norm(p + "output.LayerNorm"), mlp)
 
     e = "embeddings."
@@ -74,31 +61,14 @@ def read(src: TensorSource, config: dict) -> Weights:
         W_type = get(e + "token_type_embeddings.weight", (n_types, d))[0].contiguous()  # [d]
 
     notes = []
-    decoder = "cls.predictions.decoder.weight"
-    if src.has(decoder):
-        W_U = src.get(decoder, (V, d)).T.contiguous()  # [d, V]
-        readout = "tied" if torch.equal(W_U.T, W_E) else "lm-head"
-    elif src.has("cls.predictions.transform.dense.weight"):
-        W_U, readout = W_E.T.contiguous(), "tied"  # [d, V]: the head's decoder is tied to the embedding
-    else:
-        W_U, readout = W_E.T.contiguous(), "input-embedding"  # [d, V]
+    # a head with a transform but no decoder matrix: the decoder is tied to the embedding
+    unembed = unembedding(src, ("cls.predictions.decoder.weight",), W_E, src.has("cls.predictions.transform.dense.weight"))
+    if unembed is None:
+        unembed = W_E.T.contiguous(), "input-embedding"  # [d, V]
         notes.append("the checkpoint has no language-model head: the input embedding is used as the "
                      "readout for the OV analysis.")
-    if readout != "input-embedding":
+    if unembed[1] != "input-embedding":
         notes.append("the masked-LM head's transform (dense layer, activation, LayerNorm) and output bias "
                      "are left out of the readout.")
-    return Weights(
-        family="bert",
-        W_E=W_E,
-        W_pos=W_pos,
-        W_U=W_U,
-        final_norm=_IDENTITY,
-        layers=LazyLayers(L, load_layer),
-        placement="post",
-        embed_norm=norm(e + "LayerNorm"),
-        W_type=W_type,
-        readout=readout,
-        notes=tuple(notes),
-        source=str(src.path),
-        config=dict(config),
-    )
+    return assemble("bert", src, config, W_E, unembed, _IDENTITY, L, load_layer, W_pos=W_pos, placement="post",
+                    embed_norm=norm(e + "LayerNorm"), W_type=W_type, notes=tuple(notes))

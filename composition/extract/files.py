@@ -38,50 +38,37 @@ HDF5 = (".h5", ".hdf5")
 INDEX = ".index.json"
 
 
-class TensorSource:
-    """Lazy, named access to the tensors of one checkpoint: a file, or shards behind an index."""
+class NamedTensors:
+    """What every tensor source offers a reader: names, shapes, checked float32 tensors by name,
+    and which tensors were used. A subclass fills ``_index`` (name -> what holds it), sets ``path``
+    and ``_label`` (how messages name the source), and implements ``shape``, ``file_of`` and
+    ``_float32``."""
 
-    def __init__(self, path: str | os.PathLike):
-        self.path = Path(path)
-        self._where: dict[str, _File] = {}
-        if self.path.name.endswith(INDEX):
-            self._open_index(self.path)
-        else:
-            f = _open_file(self.path)
-            self._where = {name: f for name in f.names()}
-        self._taken: set[str] = set()
+    path: object
+    _label: object
+    _index: dict
 
     def names(self) -> list[str]:
-        return list(self._where)
+        return list(self._index)
 
     def has(self, name: str) -> bool:
-        return name in self._where
+        return name in self._index
 
     def shape(self, name: str) -> tuple[int, ...]:
-        self._need(name)
-        return self._where[name].shape(name)
-
-    def file_of(self, name: str) -> Path:
-        self._need(name)
-        return self._where[name].path
+        raise NotImplementedError
 
     def get(self, name: str, shape: tuple[int, ...] | None = None) -> torch.Tensor:
-        """The tensor ``name`` as float32, checked against ``shape`` if given. # -> shape"""
+        """The tensor ``name`` as float32, checked against ``shape`` if given, for floating-point
+        values and for finite values. # -> shape"""
         self._need(name)
-        f = self._where[name]
-        if shape is not None and f.shape(name) != tuple(shape):
+        where = self._where(name)
+        if shape is not None and self.shape(name) != tuple(shape):
             raise CompositionError(
-                f"tensor {name} in {f.path} has shape {f.shape(name)}, but the config "
-                f"implies {tuple(shape)}."
+                f"tensor {name} in {where} has shape {self.shape(name)}, but the config implies {tuple(shape)}."
             )
-        t = f.get(name)
-        if tuple(t.shape) != f.shape(name):
-            raise CompositionError(f"tensor {name} in {f.path} does not hold the shape its header states.")
-        if not t.is_floating_point():
-            raise CompositionError(f"tensor {name} in {f.path} is {t.dtype}, not a floating-point type.")
-        t = t.to(torch.float32)
+        t = self._float32(name, where)
         if not torch.isfinite(t).all():
-            raise CompositionError(f"tensor {name} in {f.path} contains NaN or Inf values; it cannot be analysed.")
+            raise CompositionError(f"tensor {name} in {where} contains NaN or Inf values; it cannot be analysed.")
         self._taken.add(name)
         return t
 
@@ -89,11 +76,54 @@ class TensorSource:
         return sorted(self._taken)
 
     def ignored(self) -> list[str]:
-        return sorted(set(self._where) - self._taken)
+        return sorted(set(self._index) - self._taken)
+
+    def _where(self, name: str) -> object:
+        """How messages about tensor ``name`` name the place that holds it."""
+        return self._label
+
+    def _float32(self, name: str, where) -> torch.Tensor:
+        """The tensor read and converted to float32, or a sentence when it is not floating-point."""
+        raise NotImplementedError
 
     def _need(self, name: str) -> None:
-        if name not in self._where:
-            raise CompositionError(f"tensor {name} is missing from {self.path}.")
+        if name not in self._index:
+            raise CompositionError(f"tensor {name} is missing from {self._label}.")
+
+
+class TensorSource(NamedTensors):
+    """Lazy, named access to the tensors of one checkpoint: a file, or shards behind an index."""
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = Path(path)
+        self._label = self.path
+        self._index: dict[str, _File] = {}
+        if self.path.name.endswith(INDEX):
+            self._open_index(self.path)
+        else:
+            f = _open_file(self.path)
+            self._index = {name: f for name in f.names()}
+        self._taken: set[str] = set()
+
+    def shape(self, name: str) -> tuple[int, ...]:
+        self._need(name)
+        return self._index[name].shape(name)
+
+    def file_of(self, name: str) -> Path:
+        self._need(name)
+        return self._index[name].path
+
+    def _where(self, name: str) -> Path:
+        return self._index[name].path
+
+    def _float32(self, name: str, where) -> torch.Tensor:
+        f = self._index[name]
+        t = f.get(name)
+        if tuple(t.shape) != f.shape(name):
+            raise CompositionError(f"tensor {name} in {where} does not hold the shape its header states.")
+        if not t.is_floating_point():
+            raise CompositionError(f"tensor {name} in {where} is {t.dtype}, not a floating-point type.")
+        return t.to(torch.float32)
 
     def _open_index(self, index: Path) -> None:
         _check_regular(index, "shard index")
@@ -122,7 +152,7 @@ class TensorSource:
         for name, shard in wmap.items():
             if not shards[shard].has(name):
                 raise CompositionError(f"the shard index {index} places tensor {name} in {shard}, which does not hold it.")
-            self._where[name] = shards[shard]
+            self._index[name] = shards[shard]
 
 
 def locate(checkpoint: str | os.PathLike, need_config: bool = True) -> tuple[Path, dict]:
@@ -194,9 +224,10 @@ class _File:
     """One weights file: names, header shapes, tensors by name."""
 
     path: Path
+    _shapes: dict[str, tuple[int, ...]]
 
     def names(self) -> list[str]:
-        raise NotImplementedError
+        return list(self._shapes)
 
     def has(self, name: str) -> bool:
         return name in self._shapes
@@ -206,6 +237,10 @@ class _File:
 
     def get(self, name: str) -> torch.Tensor:
         raise NotImplementedError
+
+    def _unreadable(self, name: str, exc: BaseException) -> CompositionError:
+        return CompositionError(f"tensor {name} in {self.path} could not be read ({_first_line(exc)}); "
+                                "the file may be truncated or corrupt.")
 
 
 class _Safetensors(_File):
@@ -222,17 +257,11 @@ class _Safetensors(_File):
                 f"{path} is not a readable safetensors file ({_first_line(exc)}); it may be truncated or corrupt."
             ) from None
 
-    def names(self) -> list[str]:
-        return list(self._shapes)
-
     def get(self, name: str) -> torch.Tensor:
         try:
             return self._handle.get_tensor(name)
         except Exception as exc:  # noqa: BLE001
-            raise CompositionError(
-                f"tensor {name} in {self.path} could not be read ({_first_line(exc)}); "
-                "the file may be truncated or corrupt."
-            ) from None
+            raise self._unreadable(name, exc) from None
 
 
 class _HDF5(_File):
@@ -251,9 +280,6 @@ class _HDF5(_File):
                 f"{path} is not a readable HDF5 file ({_first_line(exc)}); it may be truncated or corrupt."
             ) from None
 
-    def names(self) -> list[str]:
-        return list(self._shapes)
-
     def get(self, name: str) -> torch.Tensor:
         import numpy as np
 
@@ -263,10 +289,7 @@ class _HDF5(_File):
         try:
             return torch.from_numpy(np.ascontiguousarray(ds[()]))
         except Exception as exc:  # noqa: BLE001
-            raise CompositionError(
-                f"tensor {name} in {self.path} could not be read ({_first_line(exc)}); "
-                "the file may be truncated or corrupt."
-            ) from None
+            raise self._unreadable(name, exc) from None
 
 
 class _Torch(_File):
@@ -275,9 +298,6 @@ class _Torch(_File):
         state = _torch_load(path)
         self._tensors = {k: v for k, v in state.items() if isinstance(k, str) and isinstance(v, torch.Tensor)}
         self._shapes = {k: tuple(v.shape) for k, v in self._tensors.items()}
-
-    def names(self) -> list[str]:
-        return list(self._shapes)
 
     def get(self, name: str) -> torch.Tensor:
         return self._tensors[name]

@@ -10,16 +10,14 @@ from __future__ import annotations
 import torch
 
 from ..errors import CompositionError
-from .weights import MLP, Attention, Layer, Norm, Weights
+from .weights import MLP, Attention, Layer, Weights
 from ._build import ACTIVATIONS as _ACTIVATIONS
-from ._build import LazyLayers
+from ._build import assemble, family_matches, layernorm, prefixed, unembedding
 from .files import TensorSource
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") == "gpt2" or any(
-        str(a).startswith("GPT2") for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, ("gpt2",), ("GPT2",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:
@@ -36,13 +34,10 @@ def read(src: TensorSource, config: dict) -> Weights:
     if act_name not in _ACTIVATIONS:
         raise CompositionError(f"the config's activation_function {act_name!r} is not supported.")
     act = _ACTIVATIONS[act_name]
-    pre = "transformer." if src.has("transformer.wte.weight") else ""
-
-    def get(name, shape):
-        return src.get(pre + name, shape)
+    pre, get = prefixed(src, "transformer.", "wte.weight")
 
     def norm(name):
-        return Norm("layernorm", get(f"{name}.weight", (d,)), get(f"{name}.bias", (d,)), eps)
+        return layernorm(get, name, d, eps)
 
     W_E = get("wte.weight", (V, d))  # [V, d]
     n_pos = src.shape(pre + "wpe.weight")[0] if src.has(pre + "wpe.weight") else None
@@ -65,12 +60,6 @@ def read(src: TensorSource, config: dict) -> Weights:
         )
         return Layer(norm(p + "ln_1"), attn, norm(p + "ln_2"), mlp)
 
-    lm_head = "lm_head.weight"
-    if src.has(lm_head):
-        W_U = src.get(lm_head, (V, d)).T.contiguous()  # [d, V]
-        readout = "tied" if torch.equal(W_U.T, W_E) else "lm-head"
-    else:
-        W_U, readout = W_E.T.contiguous(), "tied"  # [d, V]
     scale = None
     if not config.get("scale_attn_weights", True):
         scale = 1.0
@@ -78,20 +67,8 @@ def read(src: TensorSource, config: dict) -> Weights:
     if config.get("scale_attn_by_inverse_layer_idx"):
         notes = ("the config divides layer l's scores by l + 1 as well; that per-layer scale changes "
                  "no rank and is left out of the attention scale shown.",)
-    return Weights(
-        family="gpt2",
-        W_E=W_E,
-        W_pos=W_pos,
-        W_U=W_U,
-        final_norm=norm("ln_f"),
-        layers=LazyLayers(L, load_layer),
-        placement="pre",
-        attn_scale=scale,
-        readout=readout,
-        notes=notes,
-        source=str(src.path),
-        config=dict(config),
-    )
+    return assemble("gpt2", src, config, W_E, unembedding(src, ("lm_head.weight",), W_E, tie=True), norm("ln_f"), L,
+                    load_layer, W_pos=W_pos, placement="pre", attn_scale=scale, notes=notes)
 
 
 def _heads(w: torch.Tensor, H: int) -> torch.Tensor:

@@ -14,18 +14,16 @@ import torch
 
 from ..errors import CompositionError
 from .rotary import rotary_from_config
-from .weights import MLP, Attention, Layer, Norm, Weights
-from ._build import LazyLayers, activation, config_int, expand_kv, linear_heads
+from .weights import Attention, Layer, Norm, Weights
+from ._build import (activation, assemble, config_int, expand_kv, family_matches, linear_heads, linear_mlp, prefixed,
+                     unembedding)
 from .files import TensorSource
 
 MODEL_TYPES = ("llama", "mistral", "qwen2")
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") in MODEL_TYPES or any(
-        str(a).startswith(("Llama", "Mistral", "Qwen2F", "Qwen2M")) and not str(a).startswith("Qwen2Moe")
-        for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, MODEL_TYPES, ("Llama", "Mistral", "Qwen2F", "Qwen2M"), excluded=("Qwen2Moe",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:
@@ -48,10 +46,7 @@ def read(src: TensorSource, config: dict) -> Weights:
     o_bias = (not qwen) and bool(config.get("attention_bias", False))
     mlp_bias = bool(config.get("mlp_bias", False))
     rotary = rotary_from_config(config, dh, "split-half", default_fraction=1.0)
-    pre = "model." if src.has("model.embed_tokens.weight") else ""
-
-    def get(name, shape):
-        return src.get(pre + name, shape)
+    _, get = prefixed(src, "model.", "embed_tokens.weight")
 
     def rms(name):
         return Norm("rmsnorm", get(name, (d,)), None, eps)
@@ -75,37 +70,12 @@ def read(src: TensorSource, config: dict) -> Weights:
         b_O = get(a + "o_proj.bias", (d,)) if o_bias else zeros(d)  # [d]
         attn = Attention(W_Q, W_K, W_V, W_O, b_Q, b_K, b_V, b_O, kv_heads=kv)
         f = p + "mlp."
-        mlp = MLP(
-            W_in=get(f + "up_proj.weight", (m, d)).T.contiguous(),  # [d, m]
-            b_in=get(f + "up_proj.bias", (m,)) if mlp_bias else zeros(m),
-            W_out=get(f + "down_proj.weight", (d, m)).T.contiguous(),  # [m, d]
-            b_out=get(f + "down_proj.bias", (d,)) if mlp_bias else zeros(d),
-            activation=act,
-            W_gate=get(f + "gate_proj.weight", (m, d)).T.contiguous(),  # [d, m]
-            b_gate=get(f + "gate_proj.bias", (m,)) if mlp_bias else None,
-        )
+        mlp = linear_mlp(get, f + "up_proj", f + "down_proj", d, m, act, gate=f + "gate_proj", bias=mlp_bias)
         return Layer(rms(p + "input_layernorm.weight"), attn, rms(p + "post_attention_layernorm.weight"), mlp)
 
     W_E = get("embed_tokens.weight", (V, d))  # [V, d]
-    if src.has("lm_head.weight"):
-        W_U = src.get("lm_head.weight", (V, d)).T.contiguous()  # [d, V]
-        readout = "tied" if torch.equal(W_U.T, W_E) else "lm-head"
-    elif config.get("tie_word_embeddings", False):
-        W_U, readout = W_E.T.contiguous(), "tied"  # [d, V]
-    else:
-        raise CompositionError(
-            f"tensor lm_head.weight is missing from {src.path}, and the config does not tie the unembedding."
-        )
-    return Weights(
-        family="llama",
-        W_E=W_E,
-        W_pos=None,
-        W_U=W_U,
-        final_norm=rms("norm.weight"),
-        layers=LazyLayers(L, load_layer),
-        placement="pre",
-        rotary=rotary,
-        readout=readout,
-        source=str(src.path),
-        config=dict(config),
-    )
+    unembed = unembedding(src, ("lm_head.weight",), W_E, bool(config.get("tie_word_embeddings")),
+                          f"tensor lm_head.weight is missing from {src.path}, and the config does not tie the "
+                          "unembedding.")
+    return assemble("llama", src, config, W_E, unembed, rms("norm.weight"), L, load_layer, placement="pre",
+                    rotary=rotary)

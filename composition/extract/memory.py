@@ -27,16 +27,18 @@ import numpy as np
 import torch
 
 from ..errors import CompositionError
+from .files import NamedTensors
 
 LABEL = "state dict in memory"
 
 
-class MemorySource:
+class MemorySource(NamedTensors):
     """Named access to the tensors of a state dict: the interface of ``TensorSource``."""
 
     def __init__(self, state_dict: Mapping, label: str = LABEL):
         self.path = label  # what messages and ``Weights.source`` show
-        self._tensors: dict[str, torch.Tensor | np.ndarray] = {}
+        self._label = f"the {label}"
+        self._index: dict[str, torch.Tensor | np.ndarray] = {}
         self._taken: set[str] = set()
         for name, value in state_dict.items():
             if not isinstance(name, str):
@@ -45,52 +47,26 @@ class MemorySource:
                 raise CompositionError(
                     f"entry {name} of the {label} is a {type(value).__name__}, not a torch tensor or NumPy array."
                 )
-            self._tensors[name] = value
-
-    def names(self) -> list[str]:
-        return list(self._tensors)
-
-    def has(self, name: str) -> bool:
-        return name in self._tensors
+            self._index[name] = value
 
     def shape(self, name: str) -> tuple[int, ...]:
         self._need(name)
-        return tuple(int(n) for n in self._tensors[name].shape)
+        return tuple(int(n) for n in self._index[name].shape)
 
     def file_of(self, name: str) -> str:
         self._need(name)
         return self.path
 
-    def get(self, name: str, shape: tuple[int, ...] | None = None) -> torch.Tensor:
-        """The tensor ``name`` as a float32 CPU copy, checked against ``shape`` if given. # -> shape"""
-        self._need(name)
-        value = self._tensors[name]
-        if shape is not None and self.shape(name) != tuple(shape):
-            raise CompositionError(
-                f"tensor {name} in the {self.path} has shape {self.shape(name)}, but the config implies {tuple(shape)}."
-            )
+    def _float32(self, name: str, where) -> torch.Tensor:
+        """A float32 CPU copy: the weights never share memory with the model."""
+        value = self._index[name]
         if isinstance(value, np.ndarray):
             if value.dtype.kind != "f":
-                raise CompositionError(f"tensor {name} in the {self.path} is {value.dtype}, not a floating-point type.")
-            t = torch.from_numpy(np.array(value, dtype=np.float32, copy=True))
-        else:
-            if not value.is_floating_point():
-                raise CompositionError(f"tensor {name} in the {self.path} is {value.dtype}, not a floating-point type.")
-            t = value.detach().to(device="cpu", dtype=torch.float32, copy=True)
-        if not torch.isfinite(t).all():
-            raise CompositionError(f"tensor {name} in the {self.path} contains NaN or Inf values; it cannot be analysed.")
-        self._taken.add(name)
-        return t.contiguous()
-
-    def used(self) -> list[str]:
-        return sorted(self._taken)
-
-    def ignored(self) -> list[str]:
-        return sorted(set(self._tensors) - self._taken)
-
-    def _need(self, name: str) -> None:
-        if name not in self._tensors:
-            raise CompositionError(f"tensor {name} is missing from the {self.path}.")
+                raise CompositionError(f"tensor {name} in {where} is {value.dtype}, not a floating-point type.")
+            return torch.from_numpy(np.array(value, dtype=np.float32, copy=True))
+        if not value.is_floating_point():
+            raise CompositionError(f"tensor {name} in {where} is {value.dtype}, not a floating-point type.")
+        return value.detach().to(device="cpu", dtype=torch.float32, copy=True).contiguous()
 
 
 def memory_source(state_dict: Mapping, config) -> tuple[MemorySource, dict]:

@@ -11,36 +11,29 @@ from __future__ import annotations
 
 import torch
 
-from ..errors import CompositionError
 from .rotary import rotary_from_config
-from .weights import MLP, Attention, Layer, Norm, Weights
-from ._build import LazyLayers, activation, config_int, config_sizes
+from .weights import Attention, Layer, Weights
+from ._build import (activation, assemble, config_sizes, family_matches, layernorm, linear_mlp, prefixed,
+                     unembedding)
 from .files import TensorSource
 
 
 def matches(config: dict) -> bool:
-    return config.get("model_type") == "gpt_neox" or any(
-        str(a).startswith("GPTNeoX") and not str(a).startswith("GPTNeoXJapanese")
-        for a in config.get("architectures", []) or []
-    )
+    return family_matches(config, ("gpt_neox",), ("GPTNeoX",), excluded=("GPTNeoXJapanese",))
 
 
 def read(src: TensorSource, config: dict) -> Weights:
     fam = "GPT-NeoX"
-    d, H, L, V, dh = config_sizes(config, fam)
-    m = config_int(config, fam, "intermediate_size", default=4 * d)
+    d, H, L, V, dh, m = config_sizes(config, fam)
     eps = float(config.get("layer_norm_eps", 1e-5))
     act = activation(config, "hidden_act", "gelu")
     bias = bool(config.get("attention_bias", True))
     parallel = bool(config.get("use_parallel_residual", True))
     rotary = rotary_from_config(config, dh, "split-half", default_fraction=0.25)
-    pre = "gpt_neox." if src.has("gpt_neox.embed_in.weight") else ""
-
-    def get(name, shape):
-        return src.get(pre + name, shape)
+    _, get = prefixed(src, "gpt_neox.", "embed_in.weight")
 
     def norm(name):
-        return Norm("layernorm", get(f"{name}.weight", (d,)), get(f"{name}.bias", (d,)), eps)
+        return layernorm(get, name, d, eps)
 
     def load_layer(i: int) -> Layer:
         p = f"layers.{i}."
@@ -55,34 +48,11 @@ def read(src: TensorSource, config: dict) -> Weights:
             b_O = torch.zeros(d)
         W_O = get(p + "attention.dense.weight", (d, d)).T.reshape(H, dh, d)  # [H, dh, d]
         attn = Attention(W_Q.contiguous(), W_K, W_V, W_O.contiguous(), b_Q, b_K, b_V, b_O, kv_heads=H)
-        mlp = MLP(
-            W_in=get(p + "mlp.dense_h_to_4h.weight", (m, d)).T.contiguous(),  # [d, m]
-            b_in=get(p + "mlp.dense_h_to_4h.bias", (m,)),
-            W_out=get(p + "mlp.dense_4h_to_h.weight", (d, m)).T.contiguous(),  # [m, d]
-            b_out=get(p + "mlp.dense_4h_to_h.bias", (d,)),
-            activation=act,
-        )
+        mlp = linear_mlp(get, p + "mlp.dense_h_to_4h", p + "mlp.dense_4h_to_h", d, m, act)
         return Layer(norm(p + "input_layernorm"), attn, norm(p + "post_attention_layernorm"), mlp)
 
     W_E = get("embed_in.weight", (V, d))  # [V, d]
-    head = next((n for n in ("embed_out.weight", "lm_head.weight") if src.has(n)), None)
-    if head is not None:
-        W_U = src.get(head, (V, d)).T.contiguous()  # [d, V]
-        readout = "tied" if torch.equal(W_U.T, W_E) else "lm-head"
-    elif config.get("tie_word_embeddings", False):
-        W_U, readout = W_E.T.contiguous(), "tied"  # [d, V]
-    else:
-        raise CompositionError(f"tensor embed_out.weight (the unembedding) is missing from {src.path}.")
-    return Weights(
-        family="gpt-neox",
-        W_E=W_E,
-        W_pos=None,
-        W_U=W_U,
-        final_norm=norm("final_layer_norm"),
-        layers=LazyLayers(L, load_layer),
-        placement="parallel" if parallel else "pre",
-        rotary=rotary,
-        readout=readout,
-        source=str(src.path),
-        config=dict(config),
-    )
+    unembed = unembedding(src, ("embed_out.weight", "lm_head.weight"), W_E, bool(config.get("tie_word_embeddings")),
+                          f"tensor embed_out.weight (the unembedding) is missing from {src.path}.")
+    return assemble("gpt-neox", src, config, W_E, unembed, norm("final_layer_norm"), L, load_layer,
+                    placement="parallel" if parallel else "pre", rotary=rotary)

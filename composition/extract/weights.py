@@ -103,25 +103,12 @@ class Weights:
     source: str = ""
     config: dict = field(default_factory=dict)
 
-    @property
-    def n_layers(self) -> int:
-        return len(self.layers)
-
-    @property
-    def n_heads(self) -> int:
-        return self.layers[0].attn.W_Q.shape[0]
-
-    @property
-    def d_model(self) -> int:
-        return self.W_E.shape[1]
-
-    @property
-    def d_head(self) -> int:
-        return self.layers[0].attn.W_Q.shape[2]
-
-    @property
-    def vocab_size(self) -> int:
-        return self.W_E.shape[0]
+    # sizes (ints), read off the tensors: W_E [V, d], layer 0's W_Q [H, d, dh]
+    n_layers = property(lambda self: len(self.layers))
+    n_heads = property(lambda self: self.layers[0].attn.W_Q.shape[0])
+    d_model = property(lambda self: self.W_E.shape[1])
+    d_head = property(lambda self: self.layers[0].attn.W_Q.shape[2])
+    vocab_size = property(lambda self: self.W_E.shape[0])
 
     @property
     def scale(self) -> float:

@@ -25,10 +25,10 @@ from pathlib import Path
 
 import numpy as np
 
+from ..compose import sides
+from ..compose.sides import Words
 from ..errors import CompositionError
-from ..store.scanfile import CAUTION, Scan, load_scan
-
-RESPONSE_WORDS = {1: "attention-raising", -1: "attention-lowering", 0: "neutral"}
+from ..store.scanfile import CAUTION, Scan, load_scan, require_complete
 
 # scan-file attributes that must agree (attribute -> words for the sentence)
 _SHAPE_ATTRS = {"n_layers": "number of layers", "n_heads": "heads per layer", "d_model": "model width",
@@ -60,6 +60,7 @@ class Comparison:
     shortlisted: list[tuple[int, int, int, int]] = field(default_factory=list)  # pairs of shortlisted heads
     n_layers: int = 0
     n_heads: int = 0
+    words: Words = field(default_factory=lambda: sides.get("query").words)  # the scans' side's label words
 
     @property
     def steps(self) -> list[tuple[int, int]]:
@@ -88,8 +89,8 @@ class Comparison:
             diff = self.difference(a, b)
             for p in np.flatnonzero(self.label[a] != self.label[b]):
                 rows.append({**_pair_columns(self.index[p]), "scan_before": self.names[a], "scan_after": self.names[b],
-                             "label_before": RESPONSE_WORDS[int(self.label[a, p])],
-                             "label_after": RESPONSE_WORDS[int(self.label[b, p])],
+                             "label_before": self.words[self.label[a, p]],
+                             "label_after": self.words[self.label[b, p]],
                              "mean_percentile_before": float(self.mean_percentile[a, p]),
                              "mean_percentile_after": float(self.mean_percentile[b, p]),
                              "q_value_before": float(self.q_value[a, p]), "q_value_after": float(self.q_value[b, p]),
@@ -104,7 +105,7 @@ class Comparison:
             for p in range(len(self.index)):
                 row = {"scan_order": s, "scan": name, **_pair_columns(self.index[p]),
                        "mean_percentile": float(self.mean_percentile[s, p]),
-                       "q_value": float(self.q_value[s, p]), "label": RESPONSE_WORDS[int(self.label[s, p])]}
+                       "q_value": float(self.q_value[s, p]), "label": self.words[self.label[s, p]]}
                 for j, k in enumerate(self.k):
                     row[f"top_share_{k}"] = float(self.top_share[s, p, j])
                 for j, k in enumerate(self.k):
@@ -207,7 +208,7 @@ def compare_scans(paths, names: list[str] | None = None) -> Comparison:
     paths = [Path(p) for p in paths]
     if len(paths) < 2:
         raise CompositionError("compare needs two or more scan files.")
-    scans = [load_scan(p, complete_only=True) for p in paths]
+    scans = [require_complete(load_scan(p), "compare") for p in paths]
     _check_alike(scans)
     if names is None:
         names = [p.stem for p in paths]
@@ -224,7 +225,8 @@ def compare_scans(paths, names: list[str] | None = None) -> Comparison:
     comp = Comparison(names=list(names), paths=paths, k=[int(k) for k in scans[0].k], index=index,
                       mean_percentile=stack("mean_percentile"), q_value=stack("q_value"), label=stack("label"),
                       top_share=stack("top_share"), bottom_share=stack("bottom_share"),
-                      n_layers=int(scans[0].attrs["n_layers"]), n_heads=int(scans[0].attrs["n_heads"]))
+                      n_layers=int(scans[0].attrs["n_layers"]), n_heads=int(scans[0].attrs["n_heads"]),
+                      words=sides.for_scan(scans[0].attrs).words)  # _check_alike: every scan has this side
     comp.shortlisted = _shortlisted_pairs(scans, done)
     return comp
 

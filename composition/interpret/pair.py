@@ -147,9 +147,8 @@ def pair_detail(w: Weights, writer: Head, responder: Head, options: TableOptions
 
 
 def check_scan(scan, detail: PairDetail, w: Weights) -> None:
-    """A scan file given to ``pair --scan`` must be of this model and of the side and part asked for."""
-    if scan.attrs.get("weights_fingerprint") not in (None, w.fingerprint()):
-        raise CompositionError(f"{scan.path} was computed from other weights than this checkpoint.")
+    """A scan file given to ``pair --scan`` must be of the side and part asked for (that it is of
+    this model is checked before any computation, by ``composition.store.scanfile.check_matches``)."""
     found = sides.for_scan(scan.attrs)
     if found is not detail.side:
         raise CompositionError(f"{scan.path} is a scan of the {found.title}, not of the {detail.side.title}; give "

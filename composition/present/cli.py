@@ -19,7 +19,7 @@ from ..compose import sides
 from ..errors import CompositionError
 from ..options import ScanOptions
 from ..run.interrupts import ScanInterrupted
-from ..run.progress import ProgressPrinter
+from ..run.progress import ProgressPrinter, counter
 from ..run.scan import run_scan
 from ..store.scanfile import CAUTION, load_scan
 from . import terminal
@@ -235,22 +235,19 @@ def heads(checkpoint, out, into, baseline_draws, all_heads, overwrite, **kw):
     if (out is None) == (into is None):
         raise CompositionError("give exactly one of --out FILE.h5 (a heads file) and --into SCAN.h5.")
     start = time.monotonic()
-    show = sys.stderr.isatty()
-
-    def progress(done, total):
-        if show:
-            click.echo(f"\r  heads {done}/{total}  {time.monotonic() - start:6.1f} s", err=True, nl=False)
-
     w, _ = _load(checkpoint, kw)
-    if into is not None:
-        path = add_to_scan(into, w, draws=baseline_draws, progress=progress, all_heads=all_heads)
-    else:
-        opt.check_for_model(ScanOptions(k=kw["ks"]), w.vocab_size)
-        table = TableOptions(kw["table"], kw["position"])
-        path = write_heads_file(out, w, token_table(w, table), table, kw["ks"], kw["fdr"], kw["min_effect"],
-                                baseline_draws, overwrite=overwrite, progress=progress)
-    if show:
-        click.echo("", err=True)
+    printer = ProgressPrinter(sys.stderr)  # one status line with rate and ETA, as the scan's final phase
+    progress = counter(printer, "heads", float(w.vocab_size) ** 2)  # a head profile ranks V x V entries
+    try:
+        if into is not None:
+            path = add_to_scan(into, w, draws=baseline_draws, progress=progress, all_heads=all_heads)
+        else:
+            opt.check_for_model(ScanOptions(k=kw["ks"]), w.vocab_size)
+            table = TableOptions(kw["table"], kw["position"])
+            path = write_heads_file(out, w, token_table(w, table), table, kw["ks"], kw["fdr"], kw["min_effect"],
+                                    baseline_draws, overwrite=overwrite, progress=progress)
+    finally:
+        printer.close()
     data = load_heads(path)
     profiled = terminal.head_profiles(data, w.readout)
     click.echo(f"head profiles and model-space scores of every pair in {time.monotonic() - start:.1f} s; wrote {path}")
@@ -274,7 +271,7 @@ def shortlist(scan_file, heads_file, csv_file, parts):
     from .report import load_report_inputs
     from .report.csvfiles import write_csv
 
-    scan_data, head_data = load_report_inputs(scan_file, heads_file)
+    scan_data, head_data = load_report_inputs(scan_file, heads_file, "shortlist")
     candidates = make_shortlist(scan_data, head_data)
     _echo(terminal.shortlist(candidates, scan_data))
     if parts:
@@ -335,6 +332,12 @@ def pair(checkpoint, writer, responder, tokens, top, scan_file, csv_file, figure
     if figure_file and not str(figure_file).lower().endswith((".png", ".svg")):
         raise CompositionError(f"--figure {figure_file} must end in .png or .svg.")
     w, offsets = _load(checkpoint, kw)
+    if scan_file:  # refuse a scan of another model (or an unfinished one) before computing anything
+        from ..store.scanfile import check_matches
+        from .report import load_report_inputs
+
+        scan_data, head_data = load_report_inputs(scan_file, command="pair --scan")
+        check_matches(scan_data, w)
     opt.check_for_model(ScanOptions(k=kw["ks"]), w.vocab_size)
     vocab = load_vocabulary(checkpoint_directory(checkpoint), w.vocab_size)
     chosen = resolve_tokens([t for t in (tokens or "").split(",") if t != ""], vocab, w.vocab_size)
@@ -343,9 +346,7 @@ def pair(checkpoint, writer, responder, tokens, top, scan_file, csv_file, figure
     scan_lines = []
     if scan_file:
         from ..interpret.predict import pair_prediction
-        from .report import load_report_inputs
 
-        scan_data, head_data = load_report_inputs(scan_file)
         check_scan(scan_data, detail, w)
         scan_lines = terminal.scan_prediction(scan_file, pair_prediction(scan_data, head_data, u, r), scan_data)
     _echo(terminal.pair(detail, kw["ks"], kw["table"], kw["orientation"], top, chosen, w.readout, scan_lines))

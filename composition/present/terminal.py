@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..compose import sides
+from ..interpret.heads import HEAD_LABEL_WORDS, KINDS
 from ..interpret.predict import readout_note, side_notes
 from ..score.stats import LABEL_NOT_COMPUTED
 from ..store.scanfile import CAUTION
@@ -75,8 +76,6 @@ def findings(result, note: bool = True) -> list[str]:
 
 def head_profiles(data, readout: str | None) -> list[str]:
     """Labelled heads (copying / suppressing) and the composition-score baselines."""
-    from ..interpret.heads import HEAD_LABEL_WORDS, KINDS
-
     hp, a = data.heads, data.heads_attrs
     labelled = [tuple(int(v) for v in ix) for ix in np.argwhere(np.isin(hp["label"], (1, -1)))]
     computed = int((hp["label"] != LABEL_NOT_COMPUTED).sum())
@@ -101,9 +100,10 @@ def shortlist(candidates, scan=None) -> list[str]:
     """The shortlist table; for a scan whose side does not feed the prediction, why there is none."""
     if scan is not None and not sides.for_scan(scan.attrs).feeds_prediction:
         return ["shortlist: none; " + side_notes(scan)[1]] + [f"note: {n}" for n in side_notes(scan)[:1]]
+    words = sides.for_scan(scan.attrs).words if scan is not None else sides.get("query").words
     lines = [f"shortlist: {sum(c.kind == 'suppressor' for c in candidates)} candidate suppressor heads "
-             f"(suppressing, attention-raising), {sum(c.kind == 'back-up' for c in candidates)} candidate "
-             f"back-up heads (copying, attention-lowering)"]
+             f"({HEAD_LABEL_WORDS[-1]}, {words.raising}), {sum(c.kind == 'back-up' for c in candidates)} candidate "
+             f"back-up heads ({HEAD_LABEL_WORDS[1]}, {words.lowering})"]
     standing = any("above_generic" in r for c in candidates for r in c.writers)
     width = max([6] + [len(r["writer"]) for c in candidates for r in c.writers])
     if candidates:
@@ -135,7 +135,7 @@ def mediation(rows: list[dict], names: list[str]) -> list[str]:
     for r in rows:
         cells = "".join(" " + _share_cell(r[p], r[f"{p}_write_fraction"]).rjust(16) for p in names)
         lines.append(f"  {r['writer']:<7} {r['responder']:<9}  {r['share']:<10} {r['full']:6.3f}{cells}")
-    lines.append("  (bottom-k share for attention-lowering pairs; rank statistics are blind to magnitude, so read"
+    lines.append(f"  (bottom-k share for {sides.get('query').words.lowering} pairs; rank statistics are blind to magnitude, so read"
                  " each part beside the fraction of the write it carries; for pairs neutral on the full write the"
                  " two parts can carry opposite labels that cancel: see docs/sides.md)")
     return lines

@@ -6,6 +6,11 @@ responder layer is committed (``"layer"``, with a one-line summary) and at the e
 (``"finish"``). :class:`ProgressPrinter` turns them into lines on stderr: on a terminal a
 status line rewritten in place; elsewhere (a log file, a batch job) a plain line every
 ``interval`` seconds. Layer summaries and the start line are printed in both cases.
+
+The final phase of a scan (head profiles, model-space scores) has its own rate and ETA: its
+units are paced by their cost in token-matrix entries (``phase_cost_*``), not by pairs, so the
+line keeps moving after the last pair. ``counter`` feeds the same printer from a plain
+``progress(done, total)`` callback (``composition heads``).
 """
 
 from __future__ import annotations
@@ -13,7 +18,7 @@ from __future__ import annotations
 import sys
 import time
 from dataclasses import dataclass
-from typing import TextIO
+from typing import Callable, TextIO
 
 
 @dataclass(frozen=True)
@@ -28,15 +33,29 @@ class ScanProgress:
     entries: int  # token-matrix entries ranked by this run
     elapsed: float  # seconds since this run started computing
     message: str = ""  # "start": what is resumed; "layer": the layer's summary
+    phase: str = "pairs"  # "pairs", or "final": head profiles and model-space scores
+    phase_cost_done: float = 0.0  # final phase: cost (token-matrix entries) computed by this run
+    phase_cost_left: float = 0.0  # final phase: cost (token-matrix entries) still to compute
+    phase_elapsed: float = 0.0  # final phase: seconds this run has spent in it
+    items: str = "units"  # what units_done counts, for the status line
 
     @property
     def rate(self) -> float | None:
-        """Entries per second of this run."""
+        """Entries per second of this run (of its final phase, once there)."""
+        if self.phase == "final":
+            done, elapsed = self.phase_cost_done, self.phase_elapsed
+            return done / elapsed if elapsed > 0 and done else None
         return self.entries / self.elapsed if self.elapsed > 0 and self.entries else None
 
     @property
     def eta(self) -> float | None:
-        """Seconds left, from this run's pace over pairs."""
+        """Seconds left, from this run's pace over pairs (over the final phase's cost, once there)."""
+        if self.phase == "final":
+            if self.phase_cost_left <= 0:
+                return 0.0
+            if self.phase_cost_done <= 0 or self.phase_elapsed <= 0:
+                return None
+            return self.phase_elapsed / self.phase_cost_done * self.phase_cost_left
         done = self.pairs_done - self.pairs_before
         if done <= 0 or self.elapsed <= 0:
             return None
@@ -66,10 +85,29 @@ def format_rate(rate: float | None) -> str:
 
 
 def status_line(p: ScanProgress) -> str:
-    """``units 57/120 (47%)  2.31 M entries/s  elapsed 1m12s  ETA 1m21s``"""
+    """``units 57/120 (47%)  2.31 M entries/s  elapsed 1m12s  ETA 1m21s``; in the final phase
+    ``units 110/120 (92%)  head profiles and model-space scores  41.2 M entries/s  ...``"""
     pct = 100.0 * p.units_done / p.units_total if p.units_total else 100.0
-    return (f"units {p.units_done}/{p.units_total} ({pct:.0f}%)  {format_rate(p.rate)}  "
+    phase = "  head profiles and model-space scores" if p.phase == "final" and p.items == "units" else ""
+    return (f"{p.items} {p.units_done}/{p.units_total} ({pct:.0f}%){phase}  {format_rate(p.rate)}  "
             f"elapsed {format_duration(p.elapsed)}  ETA {format_duration(p.eta)}")
+
+
+def counter(printer: Callable[[ScanProgress], None], items: str, entries_each: float,
+            clock=time.monotonic) -> Callable[[int, int], None]:
+    """A ``progress(done, total)`` callback (``composition.interpret.heads``) that feeds ``printer``
+    the events of one final phase: ``done`` of ``total`` ``items``, each costing ``entries_each``
+    token-matrix entries (a head profile: V x V). Call it with ``(0, total)`` to start the clock."""
+    start = clock()
+
+    def progress(done: int, total: int) -> None:
+        elapsed = clock() - start
+        kind = "start" if done == 0 else "unit"
+        printer(ScanProgress(kind, done, total, 0, 0, 0, 0, int(done * entries_each), elapsed, phase="final",
+                             phase_cost_done=done * entries_each, phase_cost_left=(total - done) * entries_each,
+                             phase_elapsed=elapsed, items=items))
+
+    return progress
 
 
 class ProgressPrinter:

@@ -395,9 +395,13 @@ class _Run:
         self.start = time.monotonic()
         self.left_in_layer: dict[int, int] = {}
         self.fresh = False  # True once begun with nothing committed before
+        self.n_layers = self.n_heads = 0
+        self.final_start: float | None = None  # when this run's final phase began
+        self.final_done = self.final_left = 0.0  # final phase: cost computed by this run, cost left
 
     def begin(self, store: ScanStore) -> None:
         done = store.arrays["done"]
+        self.n_layers, self.n_heads = done.shape[:2]
         heads_done = store.groups["heads"]["done"]
         space_done = store.groups["model_space"]["done"]
         for i, unit in enumerate(self.units):
@@ -421,6 +425,9 @@ class _Run:
                 self.left_in_layer[unit.responder_layer] = self.left_in_layer.get(unit.responder_layer, 0) + 1
         self.fresh = self.units_before == 0
         self.start = time.monotonic()
+        self.final_left = float(sum(self._final_cost(u) for _, u in self.todo() if not isinstance(u, WorkUnit)))
+        if not self.left_in_layer:  # every pair committed before: this run is the final phase only
+            self.final_start = self.start
         if self.units_before:
             message = (f"resuming {self.out}: {self.units_before} of {len(self.units)} work units "
                        "already committed")
@@ -438,6 +445,9 @@ class _Run:
         self.done[i] = True
         self.units_done += 1
         if not isinstance(unit, WorkUnit):  # head profiles and model-space scores: the final phase
+            cost = self._final_cost(unit)
+            self.final_done += cost
+            self.final_left -= cost
             self._emit("unit")
             return
         n = len(unit.responder_heads)
@@ -449,6 +459,18 @@ class _Run:
         self.left_in_layer[lR] -= 1
         if self.left_in_layer[lR] == 0:
             self._emit("layer", self._layer_summary(lR, arrays))
+            del self.left_in_layer[lR]
+            if not self.left_in_layer:
+                self.final_start = time.monotonic()
+
+    def _final_cost(self, unit) -> float:
+        """A final-phase unit's cost in token-matrix entries, to pace the phase: a head profile ranks
+        V x V entries per head; a model-space unit scores H^2 pairs per later layer, each costing about
+        the time of V entries (scripts/bench-model-space at GPT-2 size: 13 s for 9,504 pairs against
+        45 s per head at V = 50,257; docs/report.md)."""
+        if isinstance(unit, HeadUnit):
+            return float(len(unit.heads) * self.keys * self.keys)
+        return float((self.n_heads**2 * max(self.n_layers - 1 - unit.writer_layer, 0) + 1) * self.keys)  # never 0
 
     def finish(self) -> None:
         self._emit("finish")
@@ -475,9 +497,12 @@ class _Run:
     def _emit(self, kind: str, message: str = "") -> None:
         if self.progress is None:
             return
+        now = time.monotonic()
+        final = {} if self.final_start is None else dict(
+            phase="final", phase_cost_done=self.final_done, phase_cost_left=self.final_left,
+            phase_elapsed=now - self.final_start)
         self.progress(ScanProgress(kind, self.units_done, len(self.units), self.units_before, self.pairs_done,
-                                   self.pairs_before, self.n_pairs, self.entries, time.monotonic() - self.start,
-                                   message))
+                                   self.pairs_before, self.n_pairs, self.entries, now - self.start, message, **final))
 
 
 def _store(arrays, index, s) -> None:

@@ -111,7 +111,7 @@ def atomic_write(path: str | os.PathLike, *, copy_from: str | os.PathLike | None
         raise CompositionError(f"output directory {directory} does not exist.")
     check_target(path, what)
     tmp = temporary_name(path)
-    try:
+    with _removed_on_failure(tmp, path, what, error):
         fd = create_exclusive(tmp)
         try:
             if copy_from is not None:
@@ -120,18 +120,19 @@ def atomic_write(path: str | os.PathLike, *, copy_from: str | os.PathLike | None
                         shutil.copyfileobj(src, dst, 1 << 20)
         finally:
             os.close(fd)
-    except OSError as exc:
-        remove_quietly(tmp)
-        raise error(path, exc, what) from None
-    except BaseException:
-        remove_quietly(tmp)
-        raise
-    try:
+    with _removed_on_failure(tmp, path, what, error):
         yield tmp
         fsync_file(tmp)
         check_target(path, what)  # nothing planted meanwhile
         os.replace(tmp, path)
         fsync_dir(directory)
+
+
+@contextmanager
+def _removed_on_failure(tmp: Path, path: Path, what: str, error):
+    """On any failure inside, remove ``tmp``; an operating-system failure becomes ``error(path, exc, what)``."""
+    try:
+        yield
     except OSError as exc:
         remove_quietly(tmp)
         raise error(path, exc, what) from None

@@ -14,7 +14,6 @@ import json
 import math
 import os
 import shutil
-import stat
 import struct
 import subprocess
 import sys
@@ -32,17 +31,12 @@ from composition.errors import CompositionError  # noqa: E402
 from composition.extract import load_weights  # noqa: E402
 from composition.run.scan import ScanOptions, run_scan  # noqa: E402
 from composition.store.scanfile import journal_path, load_scan  # noqa: E402
-from ..small_checkpoint import one_torch_thread, random_gpt2  # noqa: E402
+from ..small_checkpoint import plant, random_gpt2  # noqa: E402
+from ..small_checkpoint import one_thread  # noqa: E402, F401 (module fixtures)
 
 ROOT = Path(__file__).resolve().parents[2]
 FAST = settings(max_examples=30, deadline=None, suppress_health_check=list(HealthCheck), derandomize=True)
 SELECT = dict(writers="0", responders="1")
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    with one_torch_thread():
-        yield
 
 
 @pytest.fixture(scope="module")
@@ -343,16 +337,7 @@ def test_output_path_that_is_not_a_regular_file_is_refused_even_with_overwrite(t
     out = tmp_path / "out.h5"
     victim = tmp_path / "victim"
     victim.write_bytes(b"keep")
-    if kind == "symlink":
-        out.symlink_to(victim)
-    elif kind == "fifo":
-        os.mkfifo(out)
-    elif kind == "directory":
-        out.mkdir()
-    else:
-        if os.geteuid() != 0:
-            pytest.skip("making a device node needs root")
-        os.mknod(out, 0o600 | stat.S_IFCHR, os.makedev(1, 3))
+    plant(out, kind, victim)
     env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONPATH=str(ROOT))
     result = subprocess.run([sys.executable, "-m", "composition", "scan", str(tiny), "--out", str(out), "--overwrite",
                              "--writers", "0", "--responders", "1"], capture_output=True, text=True, env=env,

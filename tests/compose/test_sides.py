@@ -26,6 +26,7 @@ from composition.run.scan import ScanOptions, run_scan
 from composition.score.stats import summarise
 from composition.extract.tables import TableOptions, token_table
 from ..oracles import dense_gpt2 as og
+from ..small_checkpoint import random_numpy_sd
 from ..oracles import dense_sides as osd
 
 CFG = dict(model_type="gpt2", n_embd=64, n_head=4, n_layer=3, vocab_size=300, n_positions=32,
@@ -35,27 +36,7 @@ PAIRS = [((0, 1), (1, 2)), ((0, 3), (2, 0)), ((1, 2), (2, 3))]
 
 def _random_sd(cfg, seed, untied):
     """A random GPT-2-layout state dict (float32) with non-trivial biases and norms."""
-    rng = np.random.default_rng(seed)
-    d, L, V, P = cfg["n_embd"], cfg["n_layer"], cfg["vocab_size"], cfg["n_positions"]
-    m = 4 * d
-    sd = {"wte.weight": rng.normal(0, 0.5, (V, d)), "wpe.weight": rng.normal(0, 0.3, (P, d)),
-          "ln_f.weight": 1 + rng.normal(0, 0.2, d), "ln_f.bias": rng.normal(0, 0.1, d)}
-    for i in range(L):
-        for ln in ("ln_1", "ln_2"):
-            sd[f"h.{i}.{ln}.weight"] = 1 + rng.normal(0, 0.2, d)
-            sd[f"h.{i}.{ln}.bias"] = rng.normal(0, 0.1, d)
-        sd[f"h.{i}.attn.c_attn.weight"] = rng.normal(0, 0.3, (d, 3 * d))
-        sd[f"h.{i}.attn.c_attn.bias"] = rng.normal(0, 0.3, 3 * d)
-        sd[f"h.{i}.attn.c_proj.weight"] = rng.normal(0, 0.1, (d, d))
-        sd[f"h.{i}.attn.c_proj.bias"] = rng.normal(0, 0.1, d)
-        sd[f"h.{i}.mlp.c_fc.weight"] = rng.normal(0, 0.2, (d, m))
-        sd[f"h.{i}.mlp.c_fc.bias"] = rng.normal(0, 0.1, m)
-        sd[f"h.{i}.mlp.c_proj.weight"] = rng.normal(0, 0.1, (m, d))
-        sd[f"h.{i}.mlp.c_proj.bias"] = rng.normal(0, 0.1, d)
-    sd = {"transformer." + k: v.astype(np.float32) for k, v in sd.items()}
-    if untied:
-        sd["lm_head.weight"] = rng.normal(0, 0.5, (V, d)).astype(np.float32)
-    return sd
+    return random_numpy_sd(cfg, seed, prefix="transformer.", qkv_bias_std=0.3, untied=untied)
 
 
 class Small:

@@ -30,10 +30,15 @@ from ..oracles import hf_models as hf  # noqa: E402
 T_POS = 24
 
 
-def _rotated_scores_split_half(apply, cos, sin, q, k):
-    """Library-rotated scores ``rot(q_i) . rot(k_j)``. # q, k [T, dh] -> [T, T]"""
+def _assert_split_half_like(rot: Rotary, dh: int, emb, apply, seed: int) -> None:
+    """Our ``q_i M(i - j) k_j`` equals the library-rotated scores ``rot(q_i) . rot(k_j)`` of random
+    ``q, k [T, dh]`` (``emb`` the library's rotary embedding, ``apply`` its apply_rotary_pos_emb)."""
+    g = torch.Generator().manual_seed(seed)
+    q, k = torch.randn(T_POS, dh, generator=g), torch.randn(T_POS, dh, generator=g)
+    cos, sin = emb(q[None], torch.arange(T_POS)[None])
     qr, kr = apply(q[None, None], k[None, None], cos, sin)  # [1, 1, T, dh]
-    return (qr[0, 0] @ kr[0, 0].T).double()
+    ref = (qr[0, 0] @ kr[0, 0].T).double()  # [T, T]
+    assert torch.allclose(_lower(_ours(rot, dh, q, k)), _lower(ref), rtol=1e-5, atol=1e-5)
 
 
 def _ours(rot: Rotary, dh, q, k):
@@ -62,11 +67,7 @@ def test_split_half_full_rotary_matches_llama():
     rot = rotary_from_config(cfg.to_dict(), dh, "split-half")
     assert rot.dims == dh and rot.scaling == "linear"
     torch.testing.assert_close(rot.inv_freq, emb.inv_freq, rtol=0, atol=0)
-    g = torch.Generator().manual_seed(1)
-    q, k = torch.randn(T_POS, dh, generator=g), torch.randn(T_POS, dh, generator=g)
-    cos, sin = emb(q[None], torch.arange(T_POS)[None])
-    ref = _rotated_scores_split_half(ml.apply_rotary_pos_emb, cos, sin, q, k)
-    assert torch.allclose(_lower(_ours(rot, dh, q, k)), _lower(ref), rtol=1e-5, atol=1e-5)
+    _assert_split_half_like(rot, dh, emb, ml.apply_rotary_pos_emb, seed=1)
 
 
 @pytest.mark.parametrize("fraction", [0.25, 0.5])
@@ -84,11 +85,7 @@ def test_split_half_partial_rotary_matches_neox(fraction):
     rot = rotary_from_config(cfg.to_dict(), dh, "split-half", default_fraction=0.25)
     assert rot.dims == int(dh * fraction)
     torch.testing.assert_close(rot.inv_freq, emb.inv_freq, rtol=0, atol=0)
-    g = torch.Generator().manual_seed(2)
-    q, k = torch.randn(T_POS, dh, generator=g), torch.randn(T_POS, dh, generator=g)
-    cos, sin = emb(q[None], torch.arange(T_POS)[None])
-    ref = _rotated_scores_split_half(mn.apply_rotary_pos_emb, cos, sin, q, k)
-    assert torch.allclose(_lower(_ours(rot, dh, q, k)), _lower(ref), rtol=1e-5, atol=1e-5)
+    _assert_split_half_like(rot, dh, emb, mn.apply_rotary_pos_emb, seed=2)
 
 
 def test_old_flat_neox_config_keys():

@@ -82,7 +82,7 @@ def test_pair_refuses_a_scan_of_other_weights(model, tmp_path):
     other, _, _ = random_gpt2(str(tmp_path / "other"), seed=5)
     run_scan(other, tmp_path / "o.h5", ScanOptions(writers="0.1", responders="2.3"))
     res = CliRunner().invoke(main, ["pair", path, "0.1", "2.3", "--scan", str(tmp_path / "o.h5")])
-    assert res.exit_code == 2 and "other weights" in res.stderr and len(res.stderr.strip().splitlines()) == 1
+    assert res.exit_code == 2 and "its weights differ" in res.stderr and len(res.stderr.strip().splitlines()) == 1
 
 
 def test_ties_at_the_extremes_are_counted(model, tmp_path):

@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
+from ..small_checkpoint import random_numpy_sd  # noqa: F401 (tests import it from here too)
 from . import dense_gpt2 as og
 
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
@@ -23,30 +24,6 @@ os.environ.setdefault("HF_HUB_OFFLINE", "1")
 SMALL_CFG = dict(n_embd=64, n_head=4, n_layer=2, vocab_size=300, n_positions=32,
                  layer_norm_epsilon=1e-5, activation_function="gelu_new",
                  n_inner=None)
-
-
-def random_numpy_sd(cfg, seed=0, prefix=""):
-    """A random GPT-2-layout state dict with non-trivial biases and norms."""
-    rng = np.random.default_rng(seed)
-    d, L, V, P = cfg["n_embd"], cfg["n_layer"], cfg["vocab_size"], cfg["n_positions"]
-    m = cfg.get("n_inner") or 4 * d
-    sd = {"wte.weight": rng.normal(0, 0.5, (V, d)),
-          "wpe.weight": rng.normal(0, 0.3, (P, d)),
-          "ln_f.weight": 1 + rng.normal(0, 0.2, d),
-          "ln_f.bias": rng.normal(0, 0.1, d)}
-    for i in range(L):
-        for ln in ("ln_1", "ln_2"):
-            sd[f"h.{i}.{ln}.weight"] = 1 + rng.normal(0, 0.2, d)
-            sd[f"h.{i}.{ln}.bias"] = rng.normal(0, 0.1, d)
-        sd[f"h.{i}.attn.c_attn.weight"] = rng.normal(0, 0.3, (d, 3 * d))
-        sd[f"h.{i}.attn.c_attn.bias"] = rng.normal(0, 0.1, 3 * d)
-        sd[f"h.{i}.attn.c_proj.weight"] = rng.normal(0, 0.1, (d, d))
-        sd[f"h.{i}.attn.c_proj.bias"] = rng.normal(0, 0.1, d)
-        sd[f"h.{i}.mlp.c_fc.weight"] = rng.normal(0, 0.2, (d, m))
-        sd[f"h.{i}.mlp.c_fc.bias"] = rng.normal(0, 0.1, m)
-        sd[f"h.{i}.mlp.c_proj.weight"] = rng.normal(0, 0.1, (m, d))
-        sd[f"h.{i}.mlp.c_proj.bias"] = rng.normal(0, 0.1, d)
-    return {prefix + k: v.astype(np.float32) for k, v in sd.items()}
 
 
 def rel_err(a, b):

@@ -14,6 +14,7 @@ import pytest
 from click.testing import CliRunner
 
 from composition.present.cli import main
+from composition.store.scanfile import load_scan
 
 from ..conftest import random_gpt2
 
@@ -169,3 +170,126 @@ def test_largest_accepted_rotary_span_and_seed_are_accepted_by_the_option_checks
     assert options.seed(str(2**63 - 1)) == 2**63 - 1
     assert options.ks("10,1,5,5") == (1, 5, 10)
     options.ScanOptions(rows=5, seed=3, until_ci=0.5, rotary_offsets=(0, 99999)).validate()
+
+
+def _partial_scan(model, out):
+    """A scan stopped after its first committed unit: an in-progress scan file."""
+    from composition.run.scan import run_scan
+
+    def crash(event):
+        if event.kind == "unit":
+            raise RuntimeError("stop")
+
+    with pytest.raises(RuntimeError):
+        run_scan(model, out, progress=crash)
+    assert not load_scan(out).complete
+
+
+def _files(directory):
+    return sorted(p.relative_to(directory).as_posix() for p in directory.rglob("*"))
+
+
+@pytest.mark.parametrize("command", ["shortlist", "report", "compare"])
+def test_commands_that_read_a_scan_refuse_an_unfinished_one(small_model, tmp_path, command):
+    """shortlist, report and compare refuse an in-progress scan (issue 11 item 6): one sentence on
+    stderr naming the command and the file, exit status 2, nothing written.
+    Common practice, no source"""
+    path, _, _ = small_model
+    scan = tmp_path / "partial.h5"
+    _partial_scan(path, scan)
+    before = _files(tmp_path)
+    args = {"shortlist": ["shortlist", scan, "--csv", tmp_path / "s.csv"],
+            "report": ["report", scan, "--out", tmp_path / "report"],
+            "compare": ["compare", scan, scan, "--out", tmp_path / "cmp"]}[command]
+    result = _run(*args)
+    assert result.exit_code == 2, result.output + result.stderr
+    _assert_one_sentence(result, "unfinished scan", str(scan), "run the same scan command again")
+    assert f"{command} needs a finished scan" in result.stderr
+    assert result.stdout == ""
+    assert _files(tmp_path) == before
+
+
+def test_pair_refuses_a_scan_of_another_model(small_model, tmp_path):
+    """pair --scan checks the scan's fingerprint against the checkpoint before computing: the same
+    tensors read under another activation are refused in one sentence naming what changed, exit
+    status 2, no CSV or figure written; the matching checkpoint is accepted.
+    Common practice, no source"""
+    path, _, _ = small_model
+    scan = tmp_path / "scan.h5"
+    done = _run("scan", path, "--out", scan, "--writers", "0", "--responders", "1", "-q")
+    assert done.exit_code == 0, done.output + done.stderr
+    other = tmp_path / "relu"
+    other.mkdir()
+    for f in os.listdir(path):
+        (other / f).write_bytes(open(os.path.join(path, f), "rb").read())
+    config = json.loads((other / "config.json").read_text())
+    config["activation_function"] = "relu"
+    (other / "config.json").write_text(json.dumps(config))
+    before = _files(tmp_path)
+    result = _run("pair", other, "0.1", "1.2", "--scan", scan, "--csv", tmp_path / "p.csv",
+                  "--figure", tmp_path / "p.png")
+    assert result.exit_code == 2, result.output + result.stderr
+    _assert_one_sentence(result, str(scan), "activation changed from gelu-tanh to relu")
+    assert result.stdout == "" and _files(tmp_path) == before
+    same = _run("pair", path, "0.1", "1.2", "--scan", scan, "--top", "2")
+    assert same.exit_code == 0, same.output + same.stderr
+    assert "0.1" in same.output and str(scan) in same.output
+
+
+def test_pair_refuses_an_unfinished_scan(small_model, tmp_path):
+    """pair --scan on an in-progress scan: one sentence, exit status 2, nothing written.
+    Common practice, no source"""
+    path, _, _ = small_model
+    scan = tmp_path / "partial.h5"
+    _partial_scan(path, scan)
+    before = _files(tmp_path)
+    result = _run("pair", path, "0.1", "1.2", "--scan", scan, "--csv", tmp_path / "p.csv")
+    assert result.exit_code == 2
+    _assert_one_sentence(result, "pair --scan needs a finished scan", str(scan))
+    assert _files(tmp_path) == before
+
+
+def test_compare_of_key_side_scans_uses_the_key_sides_words(small_model, tmp_path):
+    """compare takes its label words from the sides registry for the scans' side: a comparison of
+    key-side scans writes the key side's words, never the query side's (issue 10). The scans are
+    copies of one key-side scan, so every label is unchanged and the tidy table holds each pair's
+    own label. Common practice, no source"""
+    import csv
+    import shutil
+
+    from composition.compose import sides
+
+    path, _, _ = small_model
+    first = tmp_path / "k1.h5"
+    done = _run("scan", path, "--out", first, "--side", "key", "--writers", "0", "--responders", "1",
+                "--fdr", "0.2", "--min-effect", "0.01", "-q")
+    assert done.exit_code == 0, done.output + done.stderr
+    shutil.copy(first, tmp_path / "k2.h5")
+    result = _run("compare", first, tmp_path / "k2.h5", "--out", tmp_path / "cmp")
+    assert result.exit_code == 0, result.output + result.stderr
+    scan = load_scan(first)
+    words = sides.get("key").words
+    rows = list(csv.DictReader(open(tmp_path / "cmp" / "pairs_by_scan.csv")))
+    codes = [int(scan.label[int(r["writer_layer"]), int(r["writer_head"]), int(r["responder_layer"]),
+                            int(r["responder_head"])]) for r in rows]
+    assert {1, -1} <= set(codes)  # the test means something only with labelled pairs of both signs
+    assert [r["label"] for r in rows] == [words[c] for c in codes]
+    query = sides.get("query").words
+    assert not {query.raising, query.lowering} & {r["label"] for r in rows}
+
+
+def test_terminal_label_words_come_from_their_homes(monkeypatch):
+    """The shortlist header and the mediation note take the pair words from the sides registry and
+    the head words from interpret/heads.py (issue 10: label words in one home): renaming them there
+    renames them in the terminal. Common practice, no source"""
+    from composition.compose import sides
+    from composition.compose.sides import Words
+    from composition.interpret import heads
+    from composition.present import terminal
+
+    monkeypatch.setattr(sides.get("query"), "words", Words("up-word", "down-word", "flat-word", "m."))
+    monkeypatch.setitem(heads.HEAD_LABEL_WORDS, 1, "copy-word")
+    monkeypatch.setitem(heads.HEAD_LABEL_WORDS, -1, "suppress-word")
+    header = terminal.shortlist([])[0]
+    assert "(suppress-word, up-word)" in header and "(copy-word, down-word)" in header
+    assert "bottom-k share for down-word pairs" in "\n".join(terminal.mediation([], []))

@@ -115,10 +115,10 @@ def test_palette_stays_distinct_under_deuteranopia():
     def seen(hex_colour):
         return _linear_to_srgb(deut @ _srgb_to_linear(to_rgb(hex_colour)))
 
-    c = fg.CATEGORY_COLOURS
+    c, p = fg.LABEL_COLOURS, fg.PREDICTION_COLOURS
     for a, b, apart in ((fg.LOW_COLOURS[1], fg.HIGH_COLOURS[1], 0.35), (fg.LOW_COLOURS[0], fg.HIGH_COLOURS[-1], 0.35),
                         (fg.LOW_COLOURS[2], fg.HIGH_COLOURS[0], 0.25),  # the pale tints next to the null
-                        (c["attention-raising"], c["attention-lowering"], 0.35), (c["compensating"], c["reinforcing"], 0.35)):
+                        (c[1], c[-1], 0.35), (p[-1], p[1], 0.35)):
         assert np.linalg.norm(seen(a) - seen(b)) > apart, (a, b)
     assert min(to_rgb(fg.NULL_COLOUR)) > 0.93
     table = fg.colour_table()

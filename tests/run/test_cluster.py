@@ -19,7 +19,8 @@ import pytest
 from composition.errors import CompositionError
 from composition.run.scan import run_scan
 from composition.store.scanfile import journal_path
-from ..small_checkpoint import assert_same_pairs, build_small_gpt2, one_torch_thread
+from ..small_checkpoint import assert_same_pairs, build_small_gpt2
+from ..small_checkpoint import model, one_thread  # noqa: F401 (module fixtures)
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -29,17 +30,6 @@ except ImportError:
     distributed = None
 needs_dask = pytest.mark.skipif(distributed is None,
                                 reason="the optional cluster extra (dask[distributed]) is not installed")
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    with one_torch_thread():
-        yield
-
-
-@pytest.fixture(scope="module")
-def model(tmp_path_factory):
-    return build_small_gpt2(tmp_path_factory.mktemp("cluster-model"), seed=0)
 
 
 @pytest.fixture(scope="module")

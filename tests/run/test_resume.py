@@ -30,20 +30,10 @@ from composition.run.interrupts import Guard, Interrupt
 from composition.run.progress import ProgressPrinter, ScanProgress, status_line
 from composition.run.scan import ScanOptions, run_scan, scan_pairs, work_units
 from composition.store.scanfile import journal_path, load_scan
-from ..small_checkpoint import assert_same_pairs, build_small_gpt2, one_torch_thread
+from ..small_checkpoint import assert_same_pairs, build_small_gpt2
+from ..small_checkpoint import model, one_thread  # noqa: F401 (module fixtures)
 
 ROOT = Path(__file__).resolve().parents[2]
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    with one_torch_thread():
-        yield
-
-
-@pytest.fixture(scope="module")
-def model(tmp_path_factory):
-    return build_small_gpt2(tmp_path_factory.mktemp("small-model"), seed=0)
 
 
 @pytest.fixture(scope="module")

@@ -23,20 +23,10 @@ from composition.store import schema
 from composition.store.atomic import atomic_write, write_bytes
 from composition.store.scanfile import (FORMAT_VERSION, _decode_unit, _encode_unit, apply_unit, check_matches,
                                         journal_path, load_scan, require_complete)
-from ..small_checkpoint import build_small_gpt2, one_torch_thread
+from ..small_checkpoint import plant
+from ..small_checkpoint import model, one_thread  # noqa: F401 (module fixtures)
 
 ROOT = Path(__file__).resolve().parents[2]
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    with one_torch_thread():
-        yield
-
-
-@pytest.fixture(scope="module")
-def model(tmp_path_factory):
-    return build_small_gpt2(tmp_path_factory.mktemp("model"), seed=0)
 
 
 @pytest.fixture(scope="module")
@@ -138,16 +128,7 @@ def test_atomic_writer_refuses_anything_but_a_regular_file(tmp_path, kind):
     target = tmp_path / "out.bin"
     victim = tmp_path / "victim"
     victim.write_bytes(b"keep")
-    if kind == "symlink":
-        target.symlink_to(victim)
-    elif kind == "fifo":
-        os.mkfifo(target)
-    elif kind == "directory":
-        target.mkdir()
-    else:
-        if os.geteuid() != 0:
-            pytest.skip("making a device node needs root")
-        os.mknod(target, 0o600 | stat.S_IFCHR, os.makedev(1, 3))
+    plant(target, kind, victim)
     with pytest.raises(CompositionError, match="replaces only regular files"):
         write_bytes(target, b"new")
     assert victim.read_bytes() == b"keep"

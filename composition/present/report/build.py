@@ -25,8 +25,8 @@ import numpy as np
 from ...errors import CompositionError
 from ...interpret.heads import KINDS, HeadData, load_heads
 from ...compose import sides
-from ...interpret.predict import scan_compensation, shortlist, side_notes
-from ...store.scanfile import Scan, load_scan
+from ...interpret.predict import PREDICTION_WORDS, scan_compensation, shortlist, side_notes
+from ...store.scanfile import Scan, load_scan, require_complete
 from . import figures as fg
 from .csvfiles import write_csv
 from .tables import with_pair_ids, write_tables
@@ -56,7 +56,8 @@ class Heatmap:
     values: np.ndarray  # [L, H, L, H]; NaN (or codes outside ``categories``): no value
     axes: fg.Axes
     scale: fg.Scale | None = None  # continuous statistics
-    categories: dict | None = None  # category maps
+    categories: dict | None = None  # category maps: code -> word
+    colours: dict | None = None  # category maps: code -> colour (fg.LABEL_COLOURS, fg.PREDICTION_COLOURS)
     undecided: np.ndarray | None = None  # [L, H, L, H] bool: interval contains the null (drawn grey)
     annotations: np.ndarray | None = None  # [L, H, L, H] str
     annotation_note: str = ""
@@ -142,10 +143,14 @@ def sampling_info(scan: Scan) -> SamplingInfo:
     return SamplingInfo(sampled, V, rows, int(opts.get("seed", 0)) if sampled else None, looks, until, lo, hi)
 
 
-def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLike | None = None
-                       ) -> tuple[Scan, HeadData]:
-    """The scan and its head data (from the scan file, or from a separate heads file)."""
-    scan = load_scan(scan_path)
+def load_report_inputs(scan_path: str | os.PathLike, heads_path: str | os.PathLike | None = None,
+                       command: str | None = None) -> tuple[Scan, HeadData]:
+    """The scan and its head data (from the scan file, or from a separate heads file).
+
+    An in-progress scan is refused with a sentence naming ``command`` (labels, head profiles and
+    model-space scores exist only once the whole scan is done).
+    """
+    scan = require_complete(load_scan(scan_path), command)
     source = heads_path or scan_path
     heads = load_heads(source)
     if heads is None:
@@ -172,7 +177,7 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
     from ...interpret.predict import mediation_rows
     from . import interactive, page
 
-    scan, heads = load_report_inputs(scan_path, heads_path)
+    scan, heads = load_report_inputs(scan_path, heads_path, "report")
     parts = {}
     for path in part_paths:
         part = load_scan(path)
@@ -261,7 +266,8 @@ def heatmaps(scan: Scan, heads: HeadData, comp: dict, words: SideWords, sampling
         "pair_labels", "Pair labels",
         f"Labelled pairs: Benjamini-Hochberg q \u2264 {a['fdr']} over all scanned pairs and "
         f"|mean percentile \u2212 0.5| \u2265 {a['min_effect']}.",
-        scan.label, scan_axes, categories={1: raising, -1: lowering, 0: "neutral"}))
+        scan.label, scan_axes, categories={code: words.labels[code] for code in (1, -1, 0)},
+        colours=fg.LABEL_COLOURS))
     if words.feeds_compensation:
         signs = np.vectorize(lambda u, q, r: "".join("+" if s > 0 else ("\u2212" if s < 0 else "0")
                                                      for s in (u, q, r)))
@@ -272,7 +278,8 @@ def heatmaps(scan: Scan, heads: HeadData, comp: dict, words: SideWords, sampling
             "Prediction from the three signs (writer's own write s_U, responder's response s_QK, responder's "
             "write s_R): purple compensating (product < 0, predicts self-repair), amber reinforcing "
             "(product > 0), light grey none (a neutral sign).",
-            comp["prediction"], scan_axes, categories={-1: "compensating", 1: "reinforcing", 0: "none"},
+            comp["prediction"], scan_axes, categories={code: PREDICTION_WORDS[code] for code in (-1, 1, 0)},
+            colours=fg.PREDICTION_COLOURS,
             annotations=ann, annotation_note="cell text: signs s_U s_QK s_R"))
     ms = heads.model_space
     draws = heads.model_space_attrs["baseline_draws"]
@@ -304,7 +311,7 @@ def _draw(m: Heatmap, out: Path, svg: bool = True) -> Figure:
     """The overview of a heatmap, and its zoomed blocks when the overview cannot label every head."""
     def one(axes: fg.Axes, stem: str, title: str, svg: bool) -> fg.Drawn:
         if m.categories is not None:
-            return fg.category_map(m.values, axes, out, stem, title, m.categories, m.annotations,
+            return fg.category_map(m.values, axes, out, stem, title, m.categories, m.colours, m.annotations,
                                    m.annotation_note, svg=svg)
         return fg.heatmap(m.values, axes, m.scale, out, stem, title, m.undecided, svg=svg)
 

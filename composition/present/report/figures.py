@@ -22,23 +22,29 @@ from pathlib import Path
 
 import numpy as np
 
+from ...interpret.heads import HEAD_LABEL_WORDS
+
 # --- palette -------------------------------------------------------------------------------
 NULL_COLOUR = "#f7f7f5"
 LOW_COLOURS = ("#173f7a", "#3c6fb6", "#a9c4e6")  # blue, dark to light
 HIGH_COLOURS = ("#f2b89b", "#d9581e", "#8a2a06")  # vermillion, light to dark
 UNDECIDED_COLOUR = "#c9ced6"  # the share's interval contains its null value
-CATEGORY_COLOURS = {
-    "attention-raising": HIGH_COLOURS[1], "attention-lowering": LOW_COLOURS[1], "neutral": "#e4e7eb",
-    "copying": HIGH_COLOURS[1], "suppressing": LOW_COLOURS[1],
-    "compensating": "#5b2c83", "reinforcing": "#e3a300", "none": "#e4e7eb",
-    "not computed": "#ffffff",
-}
-RESPONSE_COLOURS = {1: HIGH_COLOURS[1], -1: LOW_COLOURS[1], 0: "#e4e7eb"}  # pair labels by code, whatever their words
+NEUTRAL_COLOUR = "#e4e7eb"
+NOT_COMPUTED_COLOUR = "#ffffff"
+# Category colours are keyed by code, never by word: a side's words (compose/sides) and the head
+# words (interpret/heads.py HEAD_LABEL_WORDS) live in their own homes and may change freely.
+LABEL_COLOURS = {1: HIGH_COLOURS[1], -1: LOW_COLOURS[1], 0: NEUTRAL_COLOUR}  # pair and head labels: +1, -1, 0
+PREDICTION_COLOURS = {-1: "#5b2c83", 1: "#e3a300", 0: NEUTRAL_COLOUR}  # compensating, reinforcing, none
 
 
-def category_colour(code: int, word: str) -> str:
-    """A category's colour: by its word (predictions, head labels), else by its response code."""
-    return CATEGORY_COLOURS.get(word) or RESPONSE_COLOURS.get(int(code), "#ffffff")
+def _dark_text(colour: str) -> bool:
+    """Whether text on a cell of ``colour`` is drawn dark (a light cell) rather than white."""
+    from matplotlib.colors import to_rgb
+
+    r, g, b = to_rgb(colour)
+    return 0.2126 * r + 0.7152 * g + 0.0722 * b > 0.5
+
+
 ACCENT = "#0b7a75"  # the page's accent (links, rules)
 EMPTY_FACE = "#ffffff"
 HATCH_COLOUR = "#c3cad4"
@@ -303,16 +309,8 @@ def _empty_background(ax, n_rows: int, n_cols: int) -> None:
 
 
 def _save_fixed(fig, layout: "_Layout", out_dir: Path, stem: str, svg: bool = True) -> tuple[dict[str, Path], tuple]:
-    """Write a fixed-layout figure: PNG (palette-quantised, small) and SVG, one draw each."""
-    paths = {}
-    for ext in ("png", "svg") if svg else ("png",):
-        p = out_dir / f"{stem}.{ext}"
-        fig.savefig(p, dpi=PNG_DPI if ext == "png" else None, facecolor="white")
-        paths[ext] = p
-    _quantise(paths["png"])
-    _, plt = _mpl()
-    plt.close(fig)
-    return paths, layout.extent()
+    """Write a fixed-layout figure: PNG (palette-quantised, small) and SVG, one draw each; and its extent."""
+    return _save(fig, out_dir, stem, svg), layout.extent()
 
 
 def _quantise(path: Path) -> None:
@@ -411,11 +409,12 @@ def heatmap(values: np.ndarray, axes: Axes, scale: Scale, out_dir: Path, stem: s
 
 
 def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title: str,
-                 categories: dict[int, str], annotations: np.ndarray | None = None,
+                 categories: dict[int, str], colours: dict[int, str], annotations: np.ndarray | None = None,
                  annotation_note: str = "", svg: bool = True) -> Drawn:
     """A writer x responder map of categories (labels, predictions).
 
-    # codes [L, H, L, H] int; codes not in ``categories`` are drawn empty.
+    # codes [L, H, L, H] int; codes not in ``categories`` are drawn empty. ``categories``: code -> word
+    (the legend), ``colours``: code -> colour (``LABEL_COLOURS`` or ``PREDICTION_COLOURS``).
     ``annotations`` [L, H, L, H] of strings, written into non-empty cells when the cells are
     big enough for readable text (``Drawn.cell_text`` says whether they were).
     """
@@ -425,11 +424,11 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
 
     grid = axes.grid(codes)  # [rows, cols]
     keys = list(categories)
-    colours = [category_colour(k, categories[k]) for k in keys]
+    faces = [colours.get(k, NOT_COMPUTED_COLOUR) for k in keys]
     index = np.full(grid.shape, np.nan)
     for i, k in enumerate(keys):
         index[grid == k] = i
-    cmap = ListedColormap(colours).with_extremes(bad=(0, 0, 0, 0))
+    cmap = ListedColormap(faces).with_extremes(bad=(0, 0, 0, 0))
     lay = _layout(*grid.shape, title, right=2.3)
     fig = plt.figure(figsize=(lay.width, lay.height))
     ax = fig.add_axes(lay.axes_rect())
@@ -437,15 +436,14 @@ def category_map(codes: np.ndarray, axes: Axes, out_dir: Path, stem: str, title:
     ax.imshow(np.ma.masked_invalid(index), cmap=cmap, norm=BoundaryNorm(np.arange(len(keys) + 1) - 0.5, len(keys)),
               interpolation="nearest", aspect="equal", zorder=1)
     _frame(ax, axes, title)
-    handles = [Patch(facecolor=c, edgecolor=GRID_COLOUR, lw=0.5, label=categories[k]) for k, c in zip(keys, colours)]
+    handles = [Patch(facecolor=c, edgecolor=GRID_COLOUR, lw=0.5, label=categories[k]) for k, c in zip(keys, faces)]
     handles.append(Patch(facecolor=EMPTY_FACE, edgecolor=GRID_COLOUR, hatch="////", lw=0.5,
                          label="no value (not a pair / not scanned)"))
     wrote = False
     if annotations is not None:
         ann = axes.grid(annotations)
         cells = [(int(i), int(j)) for i, j in zip(*np.nonzero(ann != "")) if np.isfinite(index[i, j])]
-        dark = [categories[keys[int(index[i, j])]] in ("reinforcing", "neutral", "none") or keys[int(index[i, j])] == 0
-                for i, j in cells]
+        dark = [_dark_text(faces[int(index[i, j])]) for i, j in cells]
         wrote = _cell_text(ax, ann, cells, dark, _cell_inches(*grid.shape))
         if wrote:
             handles.append(Patch(facecolor="none", edgecolor="none", label=annotation_note))
@@ -465,8 +463,7 @@ def head_bars(copying_score: np.ndarray, ov_mean_percentile: np.ndarray, ov_labe
 
     L, H = copying_score.shape
     x = np.array([l * (H + 1) + h for l in range(L) for h in range(H)], dtype=float)  # a gap between layers
-    words = {1: "copying", -1: "suppressing", 0: "neutral"}
-    colours = [CATEGORY_COLOURS[words.get(int(v), "not computed")] for v in ov_label.ravel()]
+    colours = [LABEL_COLOURS.get(int(v), NOT_COMPUTED_COLOUR) for v in ov_label.ravel()]
     width = float(np.clip(0.16 * L * (H + 1), 7.0, 22.0))
     fig, (a1, a2) = plt.subplots(2, 1, figsize=(width, 5.6), sharex=True)
     for ax, values, null, lim, ylabel in (
@@ -487,10 +484,10 @@ def head_bars(copying_score: np.ndarray, ov_mean_percentile: np.ndarray, ov_labe
     fig.suptitle("Each head's own write: copying or suppressing the attended token", x=0.01, ha="left",
                  fontsize=11, fontweight="bold")
     missing = not bool(np.isin(ov_label, (1, 0, -1)).all())
-    shown = ["copying", "suppressing", "neutral"] + (["not computed"] if missing else [])
-    a1.legend(handles=[Patch(facecolor=CATEGORY_COLOURS[w], edgecolor=GRID_COLOUR, lw=0.4,
-                             label=f"OV label: {w}" if w != "not computed" else "no profile (head not in the scan)")
-                       for w in shown],
+    shown = [(LABEL_COLOURS[code], f"OV label: {HEAD_LABEL_WORDS[code]}") for code in (1, -1, 0)]
+    if missing:
+        shown.append((NOT_COMPUTED_COLOUR, "no profile (head not in the scan)"))
+    a1.legend(handles=[Patch(facecolor=colour, edgecolor=GRID_COLOUR, lw=0.4, label=label) for colour, label in shown],
               loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=len(shown), fontsize=7, frameon=False)
     fig.tight_layout()
     return _save(fig, out_dir, stem, svg)
@@ -507,12 +504,11 @@ def head_views(views: list[dict], out_dir: Path, stem: str, min_effect: float, s
     widest = max([len(v["labels"]) for v in views] + [8])
     fig, axs = plt.subplots(n, 1, figsize=(float(np.clip(0.09 * widest + 2.0, 6.0, 15.0)), 2.3 * n + 0.4),
                             squeeze=False)
-    colours = {1: CATEGORY_COLOURS["attention-raising"], -1: CATEGORY_COLOURS["attention-lowering"]}
     for ax, v in zip(axs[:, 0], views):
         x = np.arange(len(v["labels"]))
         ax.axhspan(0.5 - min_effect, 0.5 + min_effect, color="#eef0f3", zorder=0)
         ax.axhline(0.5, color=TEXT_COLOUR, lw=0.8, zorder=1)
-        c = [colours.get(int(l), "#8a94a3") for l in v["label"]]
+        c = [LABEL_COLOURS[int(l)] if int(l) in (1, -1) else "#8a94a3" for l in v["label"]]
         lo = np.asarray(v["mean"]) - np.asarray(v["low"])
         hi = np.asarray(v["high"]) - np.asarray(v["mean"])
         ax.errorbar(x, v["mean"], yerr=np.nan_to_num(np.vstack([lo, hi])), fmt="none", ecolor="#5b6675", lw=0.8,

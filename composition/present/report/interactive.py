@@ -15,6 +15,7 @@ import json
 
 import numpy as np
 
+from ...interpret.predict import PREDICTION_WORDS
 from . import figures as fg
 
 
@@ -48,7 +49,7 @@ def explorer_data(scan, heads, comp: dict, maps: list, words, sampling) -> dict:
         "min_effect": float(scan.attrs.get("min_effect", 0.05)), "sampling": sampling.short(),
         "seed": sampling.seed, "looks": "/".join(map(str, sampling.looks)),
         "labels": {str(k): v for k, v in words.labels.items()},
-        "predictions": {"-1": "compensating", "1": "reinforcing", "0": "none"},
+        "predictions": {str(code): PREDICTION_WORDS[code] for code in (-1, 1, 0)},
         "lut": fg.colour_table(), "grey": fg.UNDECIDED_COLOUR,
         "w": _int(idx[:, 0] * H + idx[:, 1]), "r": _int(idx[:, 2] * H + idx[:, 3]), "s": _int(done),
         "mp": _num(scan.mean_percentile[sel]), "mlo": _num(scan.mean_ci_low[sel]), "mhi": _num(scan.mean_ci_high[sel]),
@@ -68,7 +69,7 @@ def explorer_data(scan, heads, comp: dict, maps: list, words, sampling) -> dict:
         if m.categories is not None:
             codes = m.values[sel]
             data["values"][m.key] = [int(c) if int(c) in m.categories else None for c in codes.tolist()]
-            meta["cats"] = {str(k): [w, fg.category_colour(k, w)] for k, w in m.categories.items()}
+            meta["cats"] = {str(k): [w, m.colours[k]] for k, w in m.categories.items()}
         else:
             s = m.scale
             data["values"][m.key] = _num(m.values[sel])

@@ -9,6 +9,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ...compose import sides
 from ...interpret.heads import HEAD_LABEL_WORDS, HeadData
 from ...interpret.predict import PREDICTION_WORDS, Candidate
 from ...score.stats import LABEL_NOT_COMPUTED
@@ -76,9 +77,8 @@ dl.defs dd { margin: 2px 0 0 18px; }
 .explorer svg rect.c:hover { stroke: #000; stroke-width: 1; }
 .controls { margin: 6px 0 10px; font-size: 13px; }
 .controls select { font-size: 13px; margin-right: 14px; }
-""" % {"accent": fg.ACCENT, "high": fg.CATEGORY_COLOURS["attention-raising"],
-       "low": fg.CATEGORY_COLOURS["attention-lowering"], "comp": fg.CATEGORY_COLOURS["compensating"],
-       "reinf": fg.CATEGORY_COLOURS["reinforcing"]}
+""" % {"accent": fg.ACCENT, "high": fg.LABEL_COLOURS[1], "low": fg.LABEL_COLOURS[-1],
+       "comp": fg.PREDICTION_COLOURS[-1], "reinf": fg.PREDICTION_COLOURS[1]}
 
 _SCRIPT = """
 window.addEventListener('load', function () {
@@ -195,7 +195,7 @@ def _mediation_html(rows: list[dict], note: str) -> str:
     table = _table(["writer", "responder", "response", "share", "full write"]
                    + [f"{p} part (write fraction)" for p in names], body, text_cols=4, note=note)
     return f"""<h2 id="mediation">Mediation: through which direction the responder reads the writer</h2>
-<p class="muted">For every pair labelled on the full write: its top-k share (bottom-k for attention-lowering
+<p class="muted">For every pair labelled on the full write: its top-k share (bottom-k for {_e(sides.get("query").words.lowering)}
 pairs) when the write is replaced by its projection on the written token's own unembedding direction
 (<b>unembed</b>) or by the remainder (<b>rest</b>), with the mean fraction of the write's squared norm each
 part carries. Rank statistics are blind to magnitude: a part that carries 1&nbsp;% of the write can still rank
@@ -305,7 +305,7 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
     # shortlist
     rows = []
     for rank, c in enumerate(candidates, 1):
-        verbs = {"copying": "copies", "suppressing": "suppresses", "neutral": "neutral"}
+        verbs = {HEAD_LABEL_WORDS[1]: "copies", HEAD_LABEL_WORDS[-1]: "suppresses"}
         lines = []
         for r in c.writers[:8]:
             if r["writer"] in scan.group_names:  # a writer group (docs/groups.md): its own arrays
@@ -323,7 +323,7 @@ def render(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict,
         if len(c.writers) > 8:
             writers += f"<br>\u2026 and {len(c.writers) - 8} more (shortlist.csv)"
         rows.append([str(rank), _e(c.kind), f'<span class="mono">{_e(c.label)}</span>',
-                     _chip("suppressing" if c.kind == "suppressor" else "copying"), _fmt(c.ov_mean_percentile),
+                     _chip(HEAD_LABEL_WORDS[-1 if c.kind == "suppressor" else 1]), _fmt(c.ov_mean_percentile),
                      _fmt_q(c.ov_q_value), _fmt(c.copying_score), writers])
     shortlist_html = (_table(["rank", "kind", "head", "own write", "OV mean pct", "OV q", "copying score",
                               "writers it responds to (strongest first)"], rows, text_cols=4, left_last=True,
