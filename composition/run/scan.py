@@ -468,8 +468,15 @@ class _Run:
         V x V entries per head; a model-space unit scores H^2 pairs per later layer, each costing about
         the time of V entries (scripts/bench-model-space at GPT-2 size: 13 s for 9,504 pairs against
         45 s per head at V = 50,257; docs/report.md)."""
+        square = float(self.keys) * self.keys  # one V x V diagonal rank
         if isinstance(unit, HeadUnit):
-            return float(len(unit.heads) * self.keys * self.keys)
+            return len(unit.heads) * square
+        if isinstance(unit, GroupUnit):  # a group against each responder head: one token matrix each
+            return len(unit.responder_heads) * square
+        if isinstance(unit, GroupHeadUnit):
+            return square
+        if isinstance(unit, ReferenceUnit):  # identity, unembedding and every random draw, per responder head
+            return len(unit.heads) * (2 + self.options.reference_draws) * square
         return float((self.n_heads**2 * max(self.n_layers - 1 - unit.writer_layer, 0) + 1) * self.keys)  # never 0
 
     def finish(self) -> None:
