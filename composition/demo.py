@@ -10,7 +10,7 @@ orthogonal to each other and to the all-ones direction, carry the planted circui
   of the key decides attention-raising or attention-lowering) and write into a subspace
   of their own, copying (+) or suppressing (-) the attended token.
 
-The other sides and the mediation parts (METHODS §3b) have circuits of their own, planted in
+The other sides and the mediation parts (docs/methods.md §3b) have circuits of their own, planted in
 16-dimensional blocks of the free space (subspace 6 and the 31-dimensional remainder):
 
 * writer 1.1 moves the token's block-A component into block B (the write of a previous-token
@@ -51,7 +51,7 @@ PLANTED_CIRCUITS = {
     "reinforcer": ((1, 5), (3, 6), 4, 5, +1, +1),
 }
 
-# Circuits for the other sides and the mediation parts (METHODS §3b), planted in 16-dimensional
+# Circuits for the other sides and the mediation parts (docs/methods.md §3b), planted in 16-dimensional
 # blocks of the space PLANTED_CIRCUITS leave free. name: (writer head, responder head, what it shows)
 SIDE_CIRCUITS = {
     "induction-like": ((1, 1), (2, 0), "key side: queries with the token's block A, keys on the writer's block B"),

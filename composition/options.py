@@ -230,8 +230,8 @@ class ScanOptions:
 
     def sampling(self) -> Sampling:
         return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
-    # which path and which part of the write (METHODS §3, §3b; in the fingerprint)
-    side: str = "query"  # query | key | value (METHODS §3, §3b)
+    # which path and which part of the write (docs/methods.md §3, §3b; in the fingerprint)
+    side: str = "query"  # query | key | value (docs/methods.md §3, §3b)
     query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
     # writer groups and reference writers (docs/groups.md; in the fingerprint only when used)
     writer_groups: tuple[str, ...] = ()  # "NAME=L.H+L.H", normalised against the model by the driver

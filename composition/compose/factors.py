@@ -1,4 +1,4 @@
-"""Factored writer -> responder token matrices (METHODS §3).
+"""Factored writer -> responder token matrices (docs/methods.md §3).
 
 The token matrix ``S = left @ right.T`` (times the attention scale, which no rank sees) is
 only ever held as its two ``[V, r]`` factors, ``r <= dh``. Query side, row orientation:
@@ -7,7 +7,7 @@ only ever held as its two ``[V, r]`` factors, ``r <= dh``. Query side, row orien
                             C_UR = W_O^U Lin(N_lR) W_Q^R       [dh, dh] once per pair
     right = K_R             K_R  = N_lR(T) W_K^R               [V, dh]  once per responder
 
-Left out, as METHODS §3 explains: the value bias (a constant write), the query constant
+Left out, as docs/methods.md §3 explains: the value bias (a constant write), the query constant
 ``beta W_Q + b_Q`` and the norm's division (per-row positive scale), and the key bias
 (constant along a row). Column orientation compares ``S[j, j]`` within column ``j``: the
 same factors with ``left`` and ``right`` swapped.
@@ -37,7 +37,7 @@ def input_norm(w: Weights, layer: int) -> Norm:
 
 def residual_path(w: Weights, writer_layer: int, responder_layer: int) -> torch.Tensor:
     """The linear part of the path from a write in ``writer_layer`` to what ``responder_layer``'s
-    attention reads (METHODS §1, §3). # -> [d, d]
+    attention reads (docs/methods.md §1, §3). # -> [d, d]
 
     Pre-norm and parallel: ``Lin(N_lR)``. Post-norm: the write passes every norm after the
     residual adds in between, ``Lin(N_attn,lU) Lin(N_mlp,lU) ... Lin(N_mlp,lR-1)``; each norm's
@@ -102,7 +102,7 @@ def query_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: torch.
 
 
 # ---------------------------------------------------------------------------
-# Other sides and the query side's mediation parts (METHODS §3b)
+# Other sides and the query side's mediation parts (docs/methods.md §3b)
 #
 #   key side    S[j, t] = q_R(j) . k_U(t)   rows: query tokens j, columns: written tokens t
 #               q_R = N_lR(T) W_Q^R + b_Q^R                       [V, dh] once per responder
@@ -272,7 +272,7 @@ def query_part_side(A_writer: torch.Tensor, middle: torch.Tensor, K_responder: t
 
 def write_fraction(A_writer: torch.Tensor, W_O_writer: torch.Tensor, part: str,
                    alpha: torch.Tensor | None = None) -> float:
-    """Mean over written tokens of ``|o_part(t)|^2 / |o_U(t)|^2`` (METHODS §3b); tokens with a zero write are skipped.
+    """Mean over written tokens of ``|o_part(t)|^2 / |o_U(t)|^2`` (docs/methods.md §3b); tokens with a zero write are skipped.
 
     # A_writer [V, dh], W_O_writer [dh, d], alpha [V] -> float
     """

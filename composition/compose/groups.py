@@ -1,7 +1,7 @@
 """Writer groups: several writers acting together as one writer (docs/groups.md).
 
 A group ``G = {m_1, ..., m_n}`` of heads (possibly in different layers) writes the sum of
-its members' writes. Each member reaches the responder through its own path (METHODS §3),
+its members' writes. Each member reaches the responder through its own path (docs/methods.md §3),
 so the group's query for written token ``t`` is
 
     q_G(t) = sum_m o_m(t) Lin(path l_m -> l_R) W_Q^R = sum_m A_m C_m,R       [dh]
@@ -18,7 +18,7 @@ so the group is one more writer whose "values" have ``n dh`` columns: the key si
 (``W_K`` middles) and the value side (``W_V`` middles) stack the same way, and every
 function of the single-writer pipeline that takes ``A_writer`` and a ``middle`` takes
 ``A_G`` and ``C_G`` unchanged. The group's own write through to the logits (its copying
-label, METHODS §5) is ``F_G = A_G B_G^T`` with ``B_G^T = [W_O^m readout(l_m) W_U]_m``
+label, docs/methods.md §5) is ``F_G = A_G B_G^T`` with ``B_G^T = [W_O^m readout(l_m) W_U]_m``
 ``[n dh, V]``: the sum of its members' OV token matrices, of rank <= n dh; the ranks kernel
 takes any inner dimension. A group's write is the sum of its members' writes, so its effect
 on the token's logit is the sum of theirs.
@@ -152,7 +152,7 @@ def group_output(w: Weights, group: WriterGroup) -> torch.Tensor:
 
 
 def group_readouts(w: Weights, group: WriterGroup) -> torch.Tensor:
-    """``B_G``: the group's OV token matrix is ``F_G = A_G B_G^T`` (METHODS §5, the members' sum). # -> [V, n dh]
+    """``B_G``: the group's OV token matrix is ``F_G = A_G B_G^T`` (docs/methods.md §5, the members' sum). # -> [V, n dh]
 
     ``B_G^T = [W_O^m readout_path(l_m) W_U]_m`` stacked along the inner dimension.
     """

@@ -3,14 +3,14 @@
 A pair's statistic says how the responder ranks the written token when *this* writer writes it.
 A responder whose own query-key circuit prefers a token's own key ranks the diagonal high under
 almost any write that carries the token. Three reference writes, each put through the same
-query side as a real writer (METHODS §3, row-vector form, factors never held whole), tell a
+query side as a real writer (docs/methods.md §3, row-vector form, factors never held whole), tell a
 specific composition from a generic one:
 
-* ``identity``: the token table row itself, ``q(t) = T[t] Lin(N_lR) W_Q^R [M]`` (METHODS §3 with
+* ``identity``: the token table row itself, ``q(t) = T[t] Lin(N_lR) W_Q^R [M]`` (docs/methods.md §3 with
   ``o_U(t)`` replaced by ``T[t]``): the responder's own preference for the token's key. In a
   post-norm model the table is the residual the layer reads and ``N_lR`` is the identity there.
 * ``unembedding``: the token's effective unembedding direction, normalised, written into the
-  query: ``q(t) = u_t Lin(path) W_Q^R [M]`` with ``u_t = Lin(N_f) W_U[:, t] / |.|`` (METHODS §3b):
+  query: ``q(t) = u_t Lin(path) W_Q^R [M]`` with ``u_t = Lin(N_f) W_U[:, t] / |.|`` (docs/methods.md §3b):
   does the responder attend to a token the residual stream predicts? The path is that of a write
   from layer ``l_R - 1`` (it matters only for post-norm models).
 * ``random``: a null band. Each draw takes a donor head of an earlier layer, the SVD of its OV

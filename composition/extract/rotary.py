@@ -1,4 +1,4 @@
-"""Rotary position embeddings as row-vector matrices (METHODS §3, "Rotary positions").
+"""Rotary position embeddings as row-vector matrices (docs/methods.md §3, "Rotary positions").
 
 Rotary position embedding: Su et al. 2021, "RoFormer: Enhanced Transformer with Rotary
 Position Embedding", §3.4. A rotary head rotates each pair ``(a, b)`` of its first ``dims``

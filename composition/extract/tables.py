@@ -1,4 +1,4 @@
-"""Norms, activations and token tables (METHODS §1-§2).
+"""Norms, activations and token tables (docs/methods.md §1-§2).
 
 A token table ``T`` ``[V, d]`` stands for what the residual stream holds at a position
 whose token is ``t``, before heads move information between positions. All arithmetic
@@ -54,7 +54,7 @@ def apply_norm(norm: Norm, x: torch.Tensor) -> torch.Tensor:
 
 
 def norm_linear_part(norm: Norm, d: int) -> torch.Tensor:
-    """``Lin(N)`` ``[d, d]``: ``P diag(gamma)`` for LayerNorm, ``diag(gamma)`` for RMSNorm (METHODS §1)."""
+    """``Lin(N)`` ``[d, d]``: ``P diag(gamma)`` for LayerNorm, ``diag(gamma)`` for RMSNorm (docs/methods.md §1)."""
     gamma = torch.ones(d, dtype=torch.float64) if norm.weight is None else norm.weight.double()
     if norm.kind == "identity":
         return torch.eye(d, dtype=torch.float64)
@@ -99,7 +99,7 @@ def self_attention_output(attn: Attention, x_normed: torch.Tensor) -> torch.Tens
 
 
 def position_row(w: Weights, position: int | str | None) -> torch.Tensor | None:
-    """The position embedding row ``p`` added to every token (METHODS §2). # -> [d] or None"""
+    """The position embedding row ``p`` added to every token (docs/methods.md §2). # -> [d] or None"""
     if position is None:
         return None
     if w.W_pos is None:
@@ -113,7 +113,7 @@ def position_row(w: Weights, position: int | str | None) -> torch.Tensor | None:
 
 
 def token_table(w: Weights, options: TableOptions = TableOptions()) -> torch.Tensor:
-    """The token table ``T`` (METHODS §2). # -> [V, d] float64"""
+    """The token table ``T`` (docs/methods.md §2). # -> [V, d] float64"""
     if options.kind not in TABLES:
         raise CompositionError(f"--table {options.kind!r} is not one of: {', '.join(TABLES)}.")
     p = position_row(w, options.position)

@@ -1,6 +1,6 @@
 """Canonical per-layer weights: the one structure every checkpoint family is read into.
 
-Conventions (METHODS, "Notation"): row vectors, ``x W``. ``V`` vocabulary, ``d`` model
+Conventions (docs/methods.md, "Notation"): row vectors, ``x W``. ``V`` vocabulary, ``d`` model
 width, ``H`` query heads per layer, ``dh`` head width. Grouped-query checkpoints are
 expanded on reading: ``W_K``/``W_V`` always hold one slice per *query* head, and
 ``Attention.kv_heads`` records how many distinct key/value heads the checkpoint had.

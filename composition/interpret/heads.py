@@ -1,4 +1,4 @@
-"""Head profiles (METHODS §5) and model-space scores for every pair (METHODS §7).
+"""Head profiles (docs/methods.md §5) and model-space scores for every pair (docs/methods.md §7).
 
 Head profiles. A head's OV token matrix ``F = A B^T`` ``[V, V]``, with
 ``A = N_l(T) W_V`` ``[V, dh]`` and ``B^T = W_O Lin(N_f) W_U`` ``[dh, V]``, says how much
@@ -10,7 +10,7 @@ heads of the model. The eigenvalue copying score is ``sum Re(lambda) / sum |lamb
 the eigenvalues of the ``[dh, dh]`` matrix ``B^T A``, whose non-zero eigenvalues are those
 of ``F`` (Elhage et al. 2021, "A Mathematical Framework for Transformer Circuits").
 
-Model-space scores, norms folded (``Lin`` of METHODS §1):
+Model-space scores, norms folded (``Lin`` of docs/methods.md §1):
 ``W_OV^U = Lin(N_lU) W_V^U W_O^U`` and ``W_QK^R = Lin(N_lR) W_Q^R (Lin(N_lR) W_K^R)^T``.
 Q-, K- and V-composition scores (Elhage et al. 2021) are
 ``|W_OV^U W_QK^R|_F``, ``|W_OV^U (W_QK^R)^T|_F`` and ``|W_OV^U W_OV^R|_F`` divided by the
@@ -62,7 +62,7 @@ KINDS = ("q", "k", "v")
 
 
 # ---------------------------------------------------------------------------
-# Head profiles (METHODS §5)
+# Head profiles (docs/methods.md §5)
 # ---------------------------------------------------------------------------
 
 def ov_factors(w: Weights, table: torch.Tensor, layer: int) -> tuple[torch.Tensor, torch.Tensor]:
@@ -161,7 +161,7 @@ def label_heads(arrays: dict[str, np.ndarray], fdr: float, min_effect: float) ->
 
 
 # ---------------------------------------------------------------------------
-# Model-space scores (METHODS §7)
+# Model-space scores (docs/methods.md §7)
 # ---------------------------------------------------------------------------
 
 def _gram(X: torch.Tensor) -> torch.Tensor:
@@ -204,7 +204,7 @@ class HeadFactors:
 
 
 def fold_norm(norm, W: torch.Tensor) -> torch.Tensor:
-    """``Lin(N) W`` without forming ``Lin(N)`` (METHODS §1): ``diag(gamma)`` scales rows, the
+    """``Lin(N) W`` without forming ``Lin(N)`` (docs/methods.md §1): ``diag(gamma)`` scales rows, the
     LayerNorm centring ``P = I - 11^T/d`` subtracts the mean over rows. # W [H, d, dh] -> [H, d, dh]"""
     W = W.double()
     if norm.kind == "identity":
@@ -217,7 +217,7 @@ def fold_norm(norm, W: torch.Tensor) -> torch.Tensor:
 
 
 def layer_factors(w: Weights, layer: int) -> HeadFactors:
-    """The norm-folded factors of every head of ``layer`` (METHODS §7)."""
+    """The norm-folded factors of every head of ``layer`` (docs/methods.md §7)."""
     attn = w.layers[layer].attn
     norm = input_norm(w, layer)
     return HeadFactors(fold_norm(norm, attn.W_V), attn.W_O.double().transpose(1, 2), fold_norm(norm, attn.W_Q),
@@ -463,7 +463,7 @@ def head_attrs(w: Weights, options: TableOptions, ks, fdr: float, min_effect: fl
         "keys_per_row": int(w.W_U.shape[1]),
         "histogram_bins": HIST_BINS,
         "weights_fingerprint": fingerprint or w.fingerprint(),
-        "label_meaning": "+1 copying, -1 suppressing, 0 neutral, -128 not computed (OV token matrix diagonal, METHODS 5)",
+        "label_meaning": "+1 copying, -1 suppressing, 0 neutral, -128 not computed (OV token matrix diagonal, docs/methods.md §5)",
         "label_fill": LABEL_NOT_COMPUTED,
     }
 

@@ -1,5 +1,5 @@
 """One pair in depth: every token's diagonal rank, the percentile histogram, the tokens
-ranked highest and lowest, and where chosen tokens sit (METHODS §3-§4), on any side.
+ranked highest and lowest, and where chosen tokens sit (docs/methods.md §3-§4), on any side.
 
 The ranks come from the same factors (the side registry, ``composition.compose.sides``) and
 the same exact kernel as the scan, so the statistics printed here equal the scan file's for
@@ -29,7 +29,7 @@ Head = tuple[int, int]
 
 @dataclass
 class HeadWrite:
-    """A head's own write (METHODS §5), unlabelled: labels need the whole model's heads."""
+    """A head's own write (docs/methods.md §5), unlabelled: labels need the whole model's heads."""
 
     mean_percentile: float
     p_value: float  # uncorrected, this head alone
@@ -116,7 +116,7 @@ def _not_found(item: str, vocabulary: Vocabulary | None) -> str:
 
 
 def _head_write(w: Weights, table, head: Head, ks) -> HeadWrite:
-    """The head's OV token matrix (METHODS §5): diagonal ranks and eigenvalue copying score."""
+    """The head's OV token matrix (docs/methods.md §5): diagonal ranks and eigenvalue copying score."""
     layer, h = head
     A, B = (f[h] for f in ov_factors(w, table, layer))  # [V, dh], [V_out, dh]
     n = min(A.shape[0], B.shape[0])

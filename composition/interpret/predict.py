@@ -1,9 +1,9 @@
-"""From labels to predictions: compensation per pair (METHODS §6) and the shortlist.
+"""From labels to predictions: compensation per pair (docs/methods.md §6) and the shortlist.
 
 Three signs per pair ``(U, R)``: the writer's own effect on the written token's logit
-``s_U`` (+1 copying, -1 suppressing: the writer's OV label, METHODS §5), the responder's
-response ``s_QK`` (+1 attention-raising, -1 attention-lowering: the pair's label, METHODS
-§4) and the responder's write ``s_R`` (+1 copying, -1 suppressing). When all three are
+``s_U`` (+1 copying, -1 suppressing: the writer's OV label, docs/methods.md §5), the responder's
+response ``s_QK`` (+1 attention-raising, -1 attention-lowering: the pair's label,
+docs/methods.md §4) and the responder's write ``s_R`` (+1 copying, -1 suppressing). When all three are
 non-zero, ``s_U s_QK s_R < 0`` predicts that the responder works against what the writer
 does to the token's logit (self-repair): **compensating**; ``> 0`` **reinforcing**. A
 neutral sign on any of the three predicts nothing (**none**).
@@ -12,7 +12,7 @@ The shortlist names candidate **suppressor heads** (suppressing, and attention-r
 towards at least one writer) and **back-up heads** (copying, and attention-lowering towards
 at least one writer), each with the writers it responds to.
 
-Only a scan whose side feeds the prediction (the query side's full write, METHODS §6; the
+Only a scan whose side feeds the prediction (the query side's full write, docs/methods.md §6; the
 registry ``composition.compose.sides`` says which) gives signs, predictions and a shortlist;
 every other scan's labels are reported in its side's own words, with its side's note.
 """
@@ -75,7 +75,7 @@ def side_notes(scan: Scan) -> list[str]:
 
 
 def scan_compensation(scan: Scan, heads: HeadData) -> dict[str, np.ndarray]:
-    """``compensation`` of a scan's labels where its side feeds the prediction (METHODS §6); for any
+    """``compensation`` of a scan's labels where its side feeds the prediction (docs/methods.md §6); for any
     other side every sign of the response and every prediction is LABEL_NOT_COMPUTED.
 
     # -> {"s_writer", "s_response", "s_responder", "prediction"}: [L, H, L, H] int8
@@ -188,7 +188,7 @@ def shortlist(scan: Scan, heads: HeadData) -> list[Candidate]:
                     **_pair_numbers(groups, (g, lR, hR), ks),
                     "writer_ov": HEAD_LABEL_WORDS.get(s_writer, "not computed"),
                     "prediction": PREDICTION_WORDS[prediction],
-                    # model-space scores are defined for single heads only (METHODS §7)
+                    # model-space scores are defined for single heads only (docs/methods.md §7)
                     "q_composition": float("nan"), "q_composition_z": float("nan"),
                     "projection_kernel_q": float("nan"), "kernel_random_mean_q": float("nan"),
                 })
@@ -244,7 +244,7 @@ def pair_prediction(scan: Scan, heads: HeadData, writer: tuple[int, int], respon
 
 
 def mediation_rows(full, parts: dict) -> list[dict]:
-    """How much of each labelled query-side pair survives in each mediation part (METHODS §3b).
+    """How much of each labelled query-side pair survives in each mediation part (docs/methods.md §3b).
 
     ``full`` is the query-side scan of the whole write, ``parts`` maps ``unembed``/``rest``
     to the scans of those parts (same checkpoint and selection). One row per pair labelled on

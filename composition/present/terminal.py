@@ -49,7 +49,7 @@ def findings(result, note: bool = True) -> list[str]:
              f"labelled responders (FDR {result.attrs['fdr']}, |mean percentile - 0.5| >= "
              f"{result.attrs['min_effect']}): {len(rows)} of {computed} pairs"
              + (f" (writer groups: {', '.join(result.group_names)})" if result.group_names else "")]
-    fraction = side.part != "full" and "write_fraction" in result.arrays  # METHODS §3b: beside the shares
+    fraction = side.part != "full" and "write_fraction" in result.arrays  # docs/methods.md §3b: beside the shares
     standing = "above_generic" in tables[0]
     width = max([7] + [len(str(r["writer"])) for r in rows[:SHOW_AT_MOST]])
     if rows:

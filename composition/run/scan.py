@@ -245,7 +245,7 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
 
 @dataclass(frozen=True)
 class HeadUnit:
-    """Head profiles of the scanned heads of one layer (METHODS §5)."""
+    """Head profiles of the scanned heads of one layer (docs/methods.md §5)."""
 
     layer: int
     heads: tuple[int, ...]
@@ -253,7 +253,7 @@ class HeadUnit:
 
 @dataclass(frozen=True)
 class SpaceUnit:
-    """Model-space scores of one writer layer against every later layer (METHODS §7)."""
+    """Model-space scores of one writer layer against every later layer (docs/methods.md §7)."""
 
     writer_layer: int
 

@@ -116,7 +116,7 @@ class GroupUnit:
 
 @dataclass(frozen=True)
 class GroupHeadUnit:
-    """A writer group's OV profile: the sum of its members' OV token matrices (METHODS §5)."""
+    """A writer group's OV profile: the sum of its members' OV token matrices (docs/methods.md §5)."""
 
     group: int
     spec: str

@@ -1,4 +1,4 @@
-"""Diagonal midranks of a factored token matrix, exact, without holding it (METHODS §4).
+"""Diagonal midranks of a factored token matrix, exact, without holding it (docs/methods.md §4).
 
 For ``S = left @ right.T`` and each evaluated row ``t`` (keys: every column):
 

@@ -1,4 +1,4 @@
-"""From diagonal midranks to per-pair statistics and labels (METHODS §4).
+"""From diagonal midranks to per-pair statistics and labels (docs/methods.md §4).
 
 Null model: when a row's entries are continuous and exchangeable, the diagonal's rank is
 uniform on ``0 .. n-1``; the top-k share is then ``k/n`` and the percentile
@@ -13,7 +13,7 @@ Labels need two things (both documented in the README):
 * an effect size: ``|mean percentile - 1/2| >= min_effect``. With thousands of rows a mean
   percentile of 0.52 is significant and means nothing.
 
-Sampled rows (METHODS §4). When only ``m`` of the ``N`` rows are evaluated (a uniform sample
+Sampled rows (docs/methods.md §4). When only ``m`` of the ``N`` rows are evaluated (a uniform sample
 without replacement), the number of sampled rows in the top k is hypergeometric. The 95 %
 interval of a share is the exact hypergeometric interval for the population count,
 found by inverting the two one-sided tests as Clopper & Pearson (1934) do for the binomial:
@@ -53,7 +53,7 @@ class PairStats:
     bottom_ci_high: np.ndarray | None = None  # [nk]
     mean_ci_low: float = float("nan")  # mean percentile
     mean_ci_high: float = float("nan")
-    write_fraction: float = 1.0  # share of the writer's squared write in the scan's query part (METHODS §3b)
+    write_fraction: float = 1.0  # share of the writer's squared write in the scan's query part (docs/methods.md §3b)
 
     def datasets(self) -> dict:
         """Scan-file ``/pairs`` dataset name -> this pair's value."""

@@ -56,7 +56,7 @@ class Dataset:
 
 
 def _stats(group: str, axes: tuple[str, ...], what: str) -> list[Dataset]:
-    """The diagonal-rank statistics shared by pairs and heads (METHODS §4, §5)."""
+    """The diagonal-rank statistics shared by pairs and heads (docs/methods.md §4, §5)."""
     return [
         Dataset(group, "top_share", "f8", np.nan, axes + ("k",), f"share of {what} rows whose diagonal entry ranks in the top k"),
         Dataset(group, "bottom_share", "f8", np.nan, axes + ("k",), f"share of {what} rows whose diagonal entry ranks in the bottom k"),

@@ -1,5 +1,5 @@
 """Writer groups (composition.compose.groups): a group's factors against dense float64 oracles
-(tests/oracles/dense_gpt2.py, dense_sides.py, written from METHODS) on a small random checkpoint."""
+(tests/oracles/dense_gpt2.py, dense_sides.py, written from docs/methods.md) on a small random checkpoint."""
 
 from __future__ import annotations
 

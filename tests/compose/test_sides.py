@@ -1,6 +1,6 @@
-"""Key side, value side and the query side's mediation parts (METHODS §3b).
+"""Key side, value side and the query side's mediation parts (docs/methods.md §3b).
 
-Dense float64 oracles (tests/oracles/dense_sides.py, written from METHODS) on small random
+Dense float64 oracles (tests/oracles/dense_sides.py, written from docs/methods.md) on small random
 GPT-2-layout checkpoints written in the test; scale invariances; the projection identity;
 and recovery of what was planted in the invented demo model.
 """
@@ -160,7 +160,7 @@ def test_key_side_query_bias_counts_and_key_bias_does_not(small):
 
 
 def test_value_side_refuses_column_orientation(small):
-    """The value side is row orientation only (METHODS §3b): asking for columns is a plain error.
+    """The value side is row orientation only (docs/methods.md §3b): asking for columns is a plain error.
 
     Common practice, no source"""
     writer, responder = PAIRS[0]
@@ -257,7 +257,7 @@ def test_row_ranks_free_of_written_token_scales(small, side, part):
 
 def test_key_rotation_argument_matches_dense_score(small):
     """An averaged rotary matrix ``M`` passed to key_middles is folded so that the key side equals
-    the dense score ``q M k^T`` (METHODS §3, row-vector form), here with a random ``M``.
+    the dense score ``q M k^T`` (docs/methods.md §3, row-vector form), here with a random ``M``.
 
     Source: docs/methods.md §3 (rotary folding)"""
     writer, responder = PAIRS[1]
@@ -491,7 +491,7 @@ def families(tmp_path_factory):
 def test_every_side_and_part_on_every_family(families, tmp_path, name):
     """On small random models of every family the readers support (GPT-NeoX parallel with partial
     rotary, Llama-style grouped-query with scaled rotary, Qwen2-style with biases, BERT post-norm),
-    every side and query part equals a dense float64 matrix re-derived from METHODS (norms, linear
+    every side and query part equals a dense float64 matrix re-derived from docs/methods.md (norms, linear
     parts and the post-norm residual path in NumPy, rotary offsets folded as ``q M k^T``), with
     every diagonal midrank exact; and a scan of each side and part runs and records it.
 
@@ -548,7 +548,7 @@ def test_mediation_rows_recover_the_planted_parts(tmp_path):
     (composition.interpret.predict.mediation_rows, shown by `composition shortlist --parts`) keeps the
     on-unembedding pair 1.3 -> 2.4 in `unembed` and loses it in `rest`, and the reverse for the
     off-unembedding pair 1.1 -> 2.1; each part's write fraction is reported beside its share and
-    the two fractions add up to 1 (METHODS §3b)."""
+    the two fractions add up to 1 (docs/methods.md §3b)."""
     from composition.demo import build_demo
     from composition.interpret.predict import mediation_rows
 

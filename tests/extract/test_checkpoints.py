@@ -91,7 +91,7 @@ def test_attention_logits_match_transformers(models, name):
 def test_attn0_mlp0_table_is_block0_output_at_position0(models, name):
     """Our attn0-mlp0 token table (position index 0 for learned-position models; rotary
     models have no position embedding) equals the library's residual stream at position 0
-    after block 0 (METHODS §2, exactness test; models have 2 layers, so that hidden state
+    after block 0 (docs/methods.md §2, exactness test; models have 2 layers, so that hidden state
     is before any final norm). Encoders see a one-token input, where position 0 attends
     only to itself as in a causal decoder. Tolerance: 1e-9 relative, except 1e-5 for
     RMSNorm models, whose reference norm computes in float32 even in a float64 model.

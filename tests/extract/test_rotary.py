@@ -189,7 +189,7 @@ def llama_dir(tmp_path_factory):
 def test_folded_offsets_match_dense_rotated_scores(llama_dir, tmp_path):
     """A scan with --rotary-offsets A:B gives, for a pair, the mean percentile of the dense
     token matrix built by rotating queries and keys with the library's own rotary at every
-    offset and averaging the scores, ranked with scipy.stats.rankdata (METHODS §3, §4).
+    offset and averaging the scores, ranked with scipy.stats.rankdata (docs/methods.md §3, §4).
     Reference library: transformers (Llama rotary), scipy (rankdata).
     """
     from transformers.models.llama import modeling_llama as ml

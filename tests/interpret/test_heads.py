@@ -1,4 +1,4 @@
-"""Head profiles (METHODS §5) and model-space scores (METHODS §7): composition/heads.py.
+"""Head profiles (docs/methods.md §5) and model-space scores (docs/methods.md §7): composition/heads.py.
 
 Each test names its source (docs/testing.md). Demo-based tests test recovery of what was planted
 in the invented demo model.
@@ -76,7 +76,7 @@ def test_composition_scores_and_kernels_match_dense_matrices(small):
     dense [d, d] definitions, with Lin(N) = P diag(gamma) from the independent oracle, and
     the projection kernels equal the sum of squared cosines of SciPy's principal angles.
 
-    Source: Elhage et al. 2021 (composition scores, row-vector form as METHODS §7).
+    Source: Elhage et al. 2021 (composition scores, row-vector form as docs/methods.md §7).
     Reference library: scipy.linalg.subspace_angles, scipy.linalg.orth (Hamm & Lee 2008
     projection kernel = sum cos^2 of principal angles).
     """
@@ -163,7 +163,7 @@ def test_projection_kernel_of_random_subspaces_averages_ab_over_d():
 def test_stored_random_mean_is_ab_over_d(small):
     """The stored random mean of every pair is write dim x read dim / d.
 
-    Source: METHODS §7 (ab/d), Yamagiwa, Takase & Shimodaira 2026.
+    Source: docs/methods.md §7 (ab/d), Yamagiwa, Takase & Shimodaira 2026.
     """
     w, _, cfg = small
     ms, _ = model_space_scores(w, draws=4)
@@ -196,7 +196,7 @@ def test_ov_diagonal_midranks_match_dense_rankdata(small):
     """OV token-matrix diagonal midranks with the exact kernel equal a dense float64 matrix
     ranked with scipy.stats.rankdata(method="average"), and the profile's statistics follow.
 
-    Reference library: scipy.stats.rankdata via tests/oracles/dense_gpt2.py (METHODS §4-§5).
+    Reference library: scipy.stats.rankdata via tests/oracles/dense_gpt2.py (docs/methods.md §4-§5).
     """
     w, sd, cfg = small
     table = og.token_table(sd, cfg, "attn0-mlp0")

@@ -1,5 +1,5 @@
 """Compensation predictions and the shortlist come only from the query side's full write
-(METHODS §6); every other side's scan is reported in that side's own words.
+(docs/methods.md §6); every other side's scan is reported in that side's own words.
 
 Recovery of what was planted in the invented demo model (composition.demo): the suppressor pair
 1.0 -> 2.3 and the back-up pair 1.2 -> 3.1 are labelled on the query side and, with the same

@@ -76,7 +76,7 @@ def _eps(cfg):
 
 
 def attn_scale(cfg, layer):
-    """Attention score scale (METHODS notation: ``scale = 1/sqrt(dh)`` unless
+    """Attention score scale (docs/methods.md notation: ``scale = 1/sqrt(dh)`` unless
     the config says otherwise).  HF GPT-2 config keys honoured:
     ``scale_attn_weights`` (default True -> 1/sqrt(dh), False -> 1) and
     ``scale_attn_by_inverse_layer_idx`` (default False; True divides by
@@ -89,11 +89,11 @@ def attn_scale(cfg, layer):
 
 
 # ---------------------------------------------------------------------------
-# Norms and activations (METHODS §1, §2)
+# Norms and activations (docs/methods.md §1, §2)
 # ---------------------------------------------------------------------------
 
 def layer_norm(x, gamma, beta, eps):
-    """METHODS §1: ``N(x) = gamma * (x - mean(x)) / sqrt(var(x) + eps) + beta``
+    """docs/methods.md §1: ``N(x) = gamma * (x - mean(x)) / sqrt(var(x) + eps) + beta``
     over the last axis, population variance (divide by d)."""
     x = np.asarray(x, dtype=np.float64)
     mu = x.mean(axis=-1, keepdims=True)
@@ -103,7 +103,7 @@ def layer_norm(x, gamma, beta, eps):
 
 
 def layer_norm_linear_part(gamma):
-    """METHODS §1: ``Lin(N) = P diag(gamma)`` with ``P = I - 11^T/d`` (the
+    """docs/methods.md §1: ``Lin(N) = P diag(gamma)`` with ``P = I - 11^T/d`` (the
     division is a per-row positive scalar, ``beta`` a constant: both dropped).
     Returns a dense ``[d, d]`` matrix for right-multiplication of row vectors."""
     gamma = np.asarray(gamma, dtype=np.float64)
@@ -127,7 +127,7 @@ def gelu_exact(x):
 
 
 def activation(cfg):
-    """The config's MLP activation (METHODS §2: "the activation is the
+    """The config's MLP activation (docs/methods.md §2: "the activation is the
     config's")."""
     name = cfg.get("activation_function", "gelu_new")
     if name in ("gelu_new", "gelu_pytorch_tanh", "gelu_fast"):
@@ -155,7 +155,7 @@ def _ln(w, layer, which, cfg, x):
 
 
 def head_weights(w, cfg, layer, head):
-    """Per-head matrices of layer ``layer`` head ``head`` (METHODS notation):
+    """Per-head matrices of layer ``layer`` head ``head`` (docs/methods.md notation):
     ``W_Q, W_K, W_V [d, dh]``, ``b_Q, b_K, b_V [dh]``, ``W_O [dh, d]``.
 
     ``c_attn.weight`` is ``[d, 3d]`` with output columns ``[q | k | v]``; head
@@ -203,7 +203,7 @@ def forward_block0_position0(sd, cfg, token_ids):
     ``q . k * scale``; ``out = a + MLP(ln_2(a))``.
 
     Returns the residual stream after block 0 at every position, ``[T, d]``
-    float64 (row 0 is position 0, the row used by the METHODS §2 exactness
+    float64 (row 0 is position 0, the row used by the docs/methods.md §2 exactness
     test).  This deliberately does not use the token-table shortcut."""
     w = get_weights(sd)
     d, H, dh = _dims(cfg)
@@ -232,7 +232,7 @@ def forward_block0_position0(sd, cfg, token_ids):
 
 
 # ---------------------------------------------------------------------------
-# 2. Token tables (METHODS §2)
+# 2. Token tables (docs/methods.md §2)
 # ---------------------------------------------------------------------------
 
 def _position_vector(w, position):
@@ -252,7 +252,7 @@ def _position_vector(w, position):
 
 
 def token_table(sd, cfg, kind="attn0-mlp0", position=None):
-    """METHODS §2 token table ``T [V, d]`` (float64).
+    """docs/methods.md §2 token table ``T [V, d]`` (float64).
 
     * ``"embed"``: ``T = W_E + p``.
     * ``"mlp0"``: ``T = X + MLP_0(N2_0(X))``, ``X`` the embed table; layer-0
@@ -282,11 +282,11 @@ def token_table(sd, cfg, kind="attn0-mlp0", position=None):
 
 
 # ---------------------------------------------------------------------------
-# 3. Writer -> responder token matrix, query side (METHODS §3)
+# 3. Writer -> responder token matrix, query side (docs/methods.md §3)
 # ---------------------------------------------------------------------------
 
 def dense_token_matrix(sd, cfg, table, writer, responder):
-    """METHODS §3 query-side token matrix ``S [V, V]`` (float64, held whole).
+    """docs/methods.md §3 query-side token matrix ``S [V, V]`` (float64, held whole).
 
     ``writer = (lU, hU)``, ``responder = (lR, hR)``, ``lR > lU``.
     ``o_U(t) = N_lU(T[t]) W_V^U W_O^U`` (no value bias);
@@ -311,11 +311,11 @@ def dense_token_matrix(sd, cfg, table, writer, responder):
 
 
 # ---------------------------------------------------------------------------
-# 4. Diagonal midranks (METHODS §4)
+# 4. Diagonal midranks (docs/methods.md §4)
 # ---------------------------------------------------------------------------
 
 def midranks_rows(S, rows=None):
-    """METHODS §4 row-orientation midranks of the diagonal (0 = top).
+    """docs/methods.md §4 row-orientation midranks of the diagonal (0 = top).
 
     For each evaluated row ``t``: ``r_t = n - rankdata(S[t], 'average')[t]``,
     ``n = S.shape[1]`` (all columns are the key set; ``S[t, t]`` is taken from
@@ -333,7 +333,7 @@ def midranks_rows(S, rows=None):
 
 
 def midranks_columns(S):
-    """METHODS §3 column orientation: for each column ``j``, the midrank of
+    """docs/methods.md §3 column orientation: for each column ``j``, the midrank of
     ``S[j, j]`` within column ``j`` (0 = top):
     ``r_j = n - rankdata(S[:, j], 'average')[j]``, ``n = S.shape[0]``.
     Returns float64 ``[S.shape[1]]``."""
@@ -342,11 +342,11 @@ def midranks_columns(S):
 
 
 # ---------------------------------------------------------------------------
-# 5. OV token matrix and eigenvalue copying score (METHODS §5)
+# 5. OV token matrix and eigenvalue copying score (docs/methods.md §5)
 # ---------------------------------------------------------------------------
 
 def dense_ov_matrix(sd, cfg, table, layer, head):
-    """METHODS §5 OV token matrix
+    """docs/methods.md §5 OV token matrix
     ``F[t, u] = N_l(T[t]) W_V W_O . Lin(N_f) . W_U[:, u]``, ``[V, V]`` float64,
     with ``Lin(N_f) = P diag(gamma_f)`` and tied ``W_U = wte.weight.T``.  No
     value bias (the formula has none)."""
@@ -359,7 +359,7 @@ def dense_ov_matrix(sd, cfg, table, layer, head):
 
 
 def eigen_copying_score(F):
-    """METHODS §5 / Elhage et al. 2021: ``sum Re(lambda) / sum |lambda|`` over
+    """docs/methods.md §5 / Elhage et al. 2021: ``sum Re(lambda) / sum |lambda|`` over
     the eigenvalues of the dense matrix ``F`` (``numpy.linalg.eigvals``).
     The zero eigenvalues of a low-rank ``F`` contribute ~0 to both sums."""
     lam = np.linalg.eigvals(np.asarray(F, dtype=np.float64))

@@ -1,5 +1,5 @@
 """Independent dense float64 oracle for the key side, the value side and the
-query side's mediation parts (METHODS §3b), GPT-2 layout.
+query side's mediation parts (docs/methods.md §3b), GPT-2 layout.
 
 Written from docs/methods.md §1, §3 and §3b only (no code from the ``composition``
 package), in plain NumPy float64, reusing the GPT-2 helpers of
@@ -40,7 +40,7 @@ def _ln(w, cfg, layer, x):
 
 
 def _lin(w, layer):
-    """``Lin(N_l) = P diag(gamma)`` (METHODS §1)."""
+    """``Lin(N_l) = P diag(gamma)`` (docs/methods.md §1)."""
     g = w["ln_f.weight"] if layer == "f" else w[f"h.{layer}.ln_1.weight"]
     return og.layer_norm_linear_part(g)
 
@@ -53,7 +53,7 @@ def unembedding(sd):
 
 
 def writer_write(sd, cfg, table, writer):
-    """METHODS §3: ``o_U(t) = N_lU(T[t]) W_V^U W_O^U`` for every token, ``[V, d]`` (no value bias)."""
+    """docs/methods.md §3: ``o_U(t) = N_lU(T[t]) W_V^U W_O^U`` for every token, ``[V, d]`` (no value bias)."""
     w = og.get_weights(sd)
     lU, hU = int(writer[0]), int(writer[1])
     U = og.head_weights(w, cfg, lU, hU)
@@ -61,10 +61,10 @@ def writer_write(sd, cfg, table, writer):
 
 
 def dense_key_matrix(sd, cfg, table, writer, responder, rotation=None):
-    """METHODS §3b key side, ``S [V, V]``: row ``j`` = query token, column ``t`` = written token.
+    """docs/methods.md §3b key side, ``S [V, V]``: row ``j`` = query token, column ``t`` = written token.
 
     ``S[j, t] = (N_lR(T[j]) W_Q^R + b_Q^R) . (o_U(t) Lin(N_lR) W_K^R) * scale``; with an
-    optional ``rotation`` ``M`` ``[dh, dh]`` the score is ``q M k^T`` (METHODS §3, row-vector form)."""
+    optional ``rotation`` ``M`` ``[dh, dh]`` the score is ``q M k^T`` (docs/methods.md §3, row-vector form)."""
     w = og.get_weights(sd)
     lU, lR, hR = int(writer[0]), int(responder[0]), int(responder[1])
     if not lR > lU:
@@ -79,7 +79,7 @@ def dense_key_matrix(sd, cfg, table, writer, responder, rotation=None):
 
 
 def dense_value_matrix(sd, cfg, table, writer, responder):
-    """METHODS §3b value side, ``F [V, V]``: row ``t`` = written token, column ``u`` = logit.
+    """docs/methods.md §3b value side, ``F [V, V]``: row ``t`` = written token, column ``u`` = logit.
 
     ``F[t, u] = o_U(t) Lin(N_lR) W_V^R W_O^R Lin(N_f) W_U[:, u]``."""
     w = og.get_weights(sd)
@@ -92,7 +92,7 @@ def dense_value_matrix(sd, cfg, table, writer, responder):
 
 
 def write_part(sd, cfg, table, writer, part):
-    """METHODS §3b: ``o_U(t)`` (``full``), its projection on ``u_t`` = normalised
+    """docs/methods.md §3b: ``o_U(t)`` (``full``), its projection on ``u_t`` = normalised
     ``Lin(N_f) W_U[:, t]`` (``unembed``), or the remainder (``rest``); ``[V, d]``.
     Computed token by token in the residual space."""
     w = og.get_weights(sd)
@@ -111,7 +111,7 @@ def write_part(sd, cfg, table, writer, part):
 
 
 def dense_query_part_matrix(sd, cfg, table, writer, responder, part, rotation=None):
-    """METHODS §3 query side with the write replaced by a §3b part, ``S [V, V]``:
+    """docs/methods.md §3 query side with the write replaced by a §3b part, ``S [V, V]``:
     ``S[t, j] = o_part(t) Lin(N_lR) W_Q^R . N_lR(T[j]) W_K^R * scale``; with an optional
     ``rotation`` ``M`` the score is ``q M k^T``."""
     w = og.get_weights(sd)
@@ -127,7 +127,7 @@ def dense_query_part_matrix(sd, cfg, table, writer, responder, part, rotation=No
 
 
 def write_fraction(sd, cfg, table, writer, part):
-    """METHODS §3b: mean over tokens of ``|o_part(t)|^2 / |o_U(t)|^2``."""
+    """docs/methods.md §3b: mean over tokens of ``|o_part(t)|^2 / |o_U(t)|^2``."""
     o = writer_write(sd, cfg, table, writer)
     p = write_part(sd, cfg, table, writer, part)
     return float(np.mean(np.sum(p * p, axis=1) / np.sum(o * o, axis=1)))
@@ -137,7 +137,7 @@ def write_fraction(sd, cfg, table, writer, part):
 # Any family, from canonical weights (composition.extract.weights.Weights, read by the
 # package's checkpoint readers, which are themselves checked against
 # transformers).  Norms, linear parts and residual paths are re-derived here
-# from METHODS §1 in NumPy; only the weights come from the package.
+# from docs/methods.md §1 in NumPy; only the weights come from the package.
 # ---------------------------------------------------------------------------
 
 def _np(t):
@@ -145,7 +145,7 @@ def _np(t):
 
 
 def _norm_full(norm, x):
-    """METHODS §1: LayerNorm (population variance) or RMSNorm, row-wise; identity passes."""
+    """docs/methods.md §1: LayerNorm (population variance) or RMSNorm, row-wise; identity passes."""
     if norm.kind == "identity":
         return x
     if norm.kind == "layernorm":
@@ -163,7 +163,7 @@ def _norm_full(norm, x):
 
 
 def _norm_lin(norm, d):
-    """METHODS §1: ``Lin(N)`` = ``P diag(gamma)`` (LayerNorm), ``diag(gamma)`` (RMSNorm), I (identity)."""
+    """docs/methods.md §1: ``Lin(N)`` = ``P diag(gamma)`` (LayerNorm), ``diag(gamma)`` (RMSNorm), I (identity)."""
     g = np.ones(d) if norm.weight is None else _np(norm.weight)
     if norm.kind == "identity":
         return np.eye(d)
@@ -196,7 +196,7 @@ def _path(w, start, stop):
 
 
 def canonical_matrix(w, table, writer, responder, side, part="full", rotation=None):
-    """METHODS §3/§3b dense ``[V, V]`` matrix of any family (rows as in the package's row orientation).
+    """docs/methods.md §3/§3b dense ``[V, V]`` matrix of any family (rows as in the package's row orientation).
 
     ``rotation`` ``M`` ``[dh, dh]``: the score is ``q M k^T`` (query and key sides)."""
     T = np.asarray(table, dtype=np.float64)

@@ -126,7 +126,7 @@ def test_forward_block0_matches_transformers(act, prefix):
     assert got.shape == (len(ids), 64)
     assert rel_err(got, ref) < 1e-6
     np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-6 * np.abs(ref).max())
-    # METHODS §2 exactness test on the same model: attn0-mlp0 table at index 0.
+    # docs/methods.md §2 exactness test on the same model: attn0-mlp0 table at index 0.
     table = og.token_table(sd, cfg, "attn0-mlp0", 0)
     assert rel_err(table[ids[0]], ref[0]) < 1e-6
 

@@ -54,7 +54,7 @@ def report_dir(demo, tmp_path_factory):
 def test_compensation_follows_the_sign_of_three_labels():
     """compensating iff s_U s_QK s_R < 0, reinforcing iff > 0, none with any neutral sign.
 
-    Source: METHODS §6 (three signs; supersedes two-sign wording); the GLOSSARY's
+    Source: docs/methods.md §6 (three signs; supersedes two-sign wording); the glossary.s
     raising + suppressing / lowering + copying examples are the s_U = +1 cases.
     """
     L, H = 3, 2
@@ -145,7 +145,7 @@ def test_shortlist_command_prints_and_writes_csv(demo, tmp_path):
 
 def test_report_files_and_heatmap_axes(report_dir, demo):
     """The report writes every figure as PNG and SVG and every CSV table; heatmap SVGs keep
-    `layer.head` axis labels as text, and the page states the METHODS §8 cautions.
+    `layer.head` axis labels as text, and the page states the docs/methods.md §8 cautions.
 
     Common practice, no source.
     """
@@ -224,7 +224,7 @@ def test_pair_ranks_match_dense_rankdata(tmp_path):
     """The drill-down's per-token ranks equal the dense float64 token matrix ranked with
     scipy.stats.rankdata, row by row.
 
-    Reference library: scipy.stats.rankdata via tests/oracles/dense_gpt2.py (METHODS §3-§4).
+    Reference library: scipy.stats.rankdata via tests/oracles/dense_gpt2.py (docs/methods.md §3-§4).
     """
     path, sd, cfg = random_gpt2(tmp_path / "m", seed=11, V=200, d=32, H=2, L=3)
     w = load_weights(path)

@@ -63,7 +63,7 @@ def test_one_member_group_equals_the_single_writer_scan(model, tmp_path):
 def test_two_member_group_equals_group_statistics_and_dense_ranks(tmp_path):
     """A two-member group's stored statistics equal compose.groups.group_statistics exactly, and its mean
     percentiles and top-k shares equal those of the diagonal midranks of the members' summed dense float64
-    token matrices (tests/oracles/dense_gpt2.py, METHODS §3). Reference library: scipy (scipy.stats.rankdata
+    token matrices (tests/oracles/dense_gpt2.py, docs/methods.md §3). Reference library: scipy (scipy.stats.rankdata
     in og.midranks_rows)."""
     path, sd, cfg = random_gpt2(str(tmp_path / "m"), seed=8, V=256, d=64, H=4, L=3)
     scan = run_scan(path, tmp_path / "duo.h5", ScanOptions(writers="0.1", responders="2", writer_groups=DUO))

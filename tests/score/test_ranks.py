@@ -2,7 +2,7 @@
 
 Every path that runs on this machine (ranks.available_paths(): the vector kernel at every
 width built here, the AMX split-bf16 kernel where it exists, plain torch in fp32 and the
-torch emulation of bf16x3) must give the float64 midranks of METHODS §4 exactly, on random,
+torch emulation of bf16x3) must give the float64 midranks of docs/methods.md §4 exactly, on random,
 planted and adversarial factors.
 """
 
@@ -103,7 +103,7 @@ CASES = {
 def test_exact_midranks_match_dense_float64(case, path):
     """Reference library: scipy.stats.rankdata (method="average") on the dense float64 matrix.
 
-    Exact means equal to the float64 midranks, including ties (METHODS §4)."""
+    Exact means equal to the float64 midranks, including ties (docs/methods.md §4)."""
     left, right = CASES[case](400, 16, seed=1)
     want = dense_reference(left, right)
     got = ranks.diagonal_midranks(left, right, path=path).numpy()

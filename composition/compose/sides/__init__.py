@@ -1,4 +1,4 @@
-"""The sides of a scan, as a registry (METHODS §3, §3b, §6; docs/sides.md).
+"""The sides of a scan, as a registry (docs/methods.md §3, §3b, §6; docs/sides.md).
 
 Each side of the responder the writer's write can feed (query, key, value), and each part of
 the query side's write (full, unembed, rest), is one :class:`Side` object that declares its

@@ -1,4 +1,4 @@
-"""What every side of the registry declares (METHODS §3, §3b, §6): one ``Side`` object per
+"""What every side of the registry declares (docs/methods.md §3, §3b, §6): one ``Side`` object per
 side and query part.
 
 A side builds, for one (writer, responder) pair, the two factors of its token matrix in row
@@ -68,7 +68,7 @@ class Side:
     rows_are: str = "written tokens"
     words: Words
     title: str = ""  # "query side", "query side, unembed part of the write"
-    feeds_prediction: bool = False  # do its labels give s_QK of METHODS §6?
+    feeds_prediction: bool = False  # do its labels give s_QK of docs/methods.md §6?
     prediction_note: str = ""  # one sentence: whether and how its labels enter the prediction
     fixed_name: str = ""  # what the per-layer factor is called (for caches and plan)
 
@@ -94,7 +94,7 @@ class Side:
         return lambda hR: Product(A, middles[hR])
 
     def write_fraction(self, cache, writer: tuple[int, int]) -> float:
-        """Fraction of the writer's squared write this side reads (METHODS §3b); 1 for a whole write."""
+        """Fraction of the writer's squared write this side reads (docs/methods.md §3b); 1 for a whole write."""
         return 1.0
 
     def oriented(self, written, fixed, orientation: str) -> tuple:

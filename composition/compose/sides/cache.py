@@ -55,7 +55,7 @@ class SideFactors:
             self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU], self.directions(lU)))
 
     def write_fraction(self, writer: Head, part: str) -> float:
-        """Fraction of the writer's squared write carried by ``part`` (METHODS §3b)."""
+        """Fraction of the writer's squared write carried by ``part`` (docs/methods.md §3b)."""
         (lU, hU) = writer
         return self.held(f"fraction-{part}", writer, lambda: fx.write_fraction(
             self.values(lU)[hU], self.w.layers[lU].attn.W_O[hU], part, self.alpha(writer)))

@@ -1,4 +1,4 @@
-"""The key side (METHODS §3b): the write becomes the key of the position it was written to.
+"""The key side (docs/methods.md §3b): the write becomes the key of the position it was written to.
 
 ``S[j, t] = (N_lR(T[j]) W_Q^R + b_Q^R) . o_U(t) Lin(N_lR) W_K^R [M^T]``: rows are query tokens
 ``j``, columns written tokens ``t``; a high diagonal means a query for ``j`` picks out the
@@ -21,7 +21,7 @@ class Key(Side):
                   "+1 draws its query: a query for a token attends more to the position where the writer wrote "
                   "that token than to positions holding other written tokens; -1 repels its query: less.")
     prediction_note = ("key-side labels do not feed the compensation prediction, which needs the responder's "
-                       "query response to the written token (METHODS §6); they rank candidates for "
+                       "query response to the written token (docs/methods.md §6); they rank candidates for "
                        "induction-like pairs.")
 
     def fixed(self, cache, layer):  # -> [H, V, dh] full token-table queries

@@ -1,4 +1,4 @@
-"""The query side and its mediation parts (METHODS §3, §3b, §6).
+"""The query side and its mediation parts (docs/methods.md §3, §3b, §6).
 
 ``S[t, j] = o_U(t) Lin(N_lR) W_Q^R [M] . N_lR(T[j]) W_K^R``: the writer's write becomes the
 responder's query and meets every token's key. Parts: the write replaced by its projection on
@@ -21,7 +21,7 @@ class Query(Side):
     fixed_name = "keys"
     feeds_prediction = True
     prediction_note = ("query-side labels of the full write are the responder's response s_QK of the "
-                       "compensation prediction (METHODS §6), with the writer's and the responder's own OV labels.")
+                       "compensation prediction (docs/methods.md §6), with the writer's and the responder's own OV labels.")
 
     def fixed(self, cache, layer):  # -> [H, V, dh] responder keys
         return cache.keys(layer)
@@ -41,7 +41,7 @@ class QueryPart(Query):
                            f"the query side's words, for the write's {direction} alone: read them as mediation of "
                            "a pair labelled on the full write, beside the fraction of the write this part carries.")
         self.prediction_note = (f"labels of the query side's {part} part do not feed the compensation prediction, which needs "
-                                "the full write (METHODS §6); they say through which direction a full-write "
+                                "the full write (docs/methods.md §6); they say through which direction a full-write "
                                 "label arises.")
 
     def written(self, cache, writer, layer):
