@@ -287,7 +287,7 @@ def test_restricted_scan_profiles_only_its_heads():
     """A scan restricted to some writers and responders profiles exactly those heads (the
     others hold the not-computed label) while the model-space scores cover every pair.
 
-    Common practice, no source (the restricted quick scan of USERS.md story 2 stays quick).
+    Common practice, no source (a restricted quick scan stays quick).
     """
     from tests._demo_scan import planted_selection
     from composition.run.scan import parse_heads

@@ -23,16 +23,10 @@ from composition.run.scan import ScanOptions, run_scan
 from composition.store.scanfile import journal_path, load_scan
 
 from ..oracles import dense_gpt2 as og
-from ..small_checkpoint import build_small_gpt2, one_torch_thread, random_gpt2
+from ..small_checkpoint import build_small_gpt2, one_thread, random_gpt2  # noqa: F401  (one_thread: a fixture)
 
 ROOT = Path(__file__).resolve().parents[2]
 DUO = ("duo=0.1+1.3",)
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    with one_torch_thread():
-        yield
 
 
 @pytest.fixture(scope="module")

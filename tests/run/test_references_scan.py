@@ -13,15 +13,9 @@ from composition.compose.references import reference_statistics, standing
 from composition.extract.tables import TableOptions, token_table
 from composition.run.scan import ScanOptions, run_scan
 
-from ..small_checkpoint import one_torch_thread, random_gpt2
+from ..small_checkpoint import one_thread, random_gpt2  # noqa: F401  (one_thread: a fixture)
 
 DRAWS = 7
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    with one_torch_thread():
-        yield
 
 
 @pytest.fixture(scope="module")
