@@ -81,12 +81,6 @@ def directory_of(path: Path) -> Path:
     return path.parent if str(path.parent) else Path(".")
 
 
-def umask() -> int:
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
 def temporary_name(path: Path) -> Path:
     return directory_of(path) / f".{path.name}.{secrets.token_hex(8)}.partial"
 

@@ -33,7 +33,7 @@ import numpy as np
 
 from ..errors import CompositionError
 from . import schema
-from .atomic import (WriteError, atomic_write, check_target, directory_of, fsync_dir, os_reason,  # noqa: F401
+from .atomic import (WriteError, atomic_write, check_target, directory_of, fsync_dir, os_reason,
                      remove_quietly, special_kind)
 
 FORMAT_NAME = "composition-scan"
