@@ -135,12 +135,6 @@ def _gamma(r: int, u: float) -> float:
     return r * u / (1.0 - r * u)
 
 
-def float32_band(rank_dim: int) -> float:
-    """Half-width ``T`` of the float32 band for unit-scaled factors (``|x_t| = Y = 1``)."""
-    return 2.0 * ((2 * _U32 + _U32**2) + _gamma(rank_dim, _U32) * (1 + _U32) ** 2 + _gamma(rank_dim, _U64)) * _SAFE \
-        + 4 * _ETA
-
-
 def check_device(device: str) -> torch.device:
     """``cpu`` or ``cuda``; a sentence when CUDA was asked for and there is none."""
     if device not in DEVICES:
