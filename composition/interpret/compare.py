@@ -280,7 +280,9 @@ def _show(value) -> str:
 
 def _shortlisted_pairs(scans: list[Scan], done: np.ndarray) -> list[tuple[int, int, int, int]]:
     """The (writer, responder) pairs of heads shortlisted in any scan (composition.interpret.predict),
-    when the scan files hold head profiles; empty otherwise."""
+    when the scan files hold head profiles; empty otherwise. Writer groups on the shortlist are left
+    out: compare lines up pairs of single heads only."""
+    from ..options import head_label
     from .heads import load_heads
     from .predict import shortlist
 
@@ -291,8 +293,9 @@ def _shortlisted_pairs(scans: list[Scan], done: np.ndarray) -> list[tuple[int, i
             continue
         for cand in shortlist(scan, heads):
             for row in cand.writers:
-                lU, hU = (int(x) for x in row["writer"].split("."))
-                pair = (lU, hU, *cand.head)
+                if row["writer"] in scan.group_names:
+                    continue
+                pair = (*head_label(row["writer"], "writer"), *cand.head)
                 if done[pair] and pair not in found:
                     found.append(pair)
     return found

@@ -166,3 +166,20 @@ def test_demo_before_and_after_compare_shows_the_removed_pair(tmp_path):
     a, b = load_file(str(tmp_path / "before" / "model.safetensors")), load_file(str(tmp_path / "after" / "model.safetensors"))
     assert sorted(a) == sorted(b)
     assert [n for n in a if not np.array_equal(a[n], b[n])] == [f"transformer.h.{lR}.attn.c_attn.weight"]
+
+
+def test_shortlist_with_a_writer_group_lines_up_the_single_heads(tmp_path):
+    """Recovery of what was planted in the invented demo model (composition.demo): a group of one member
+    (``solo=1.0``, the planted suppressor's writer) is shortlisted beside the head itself; compare lines up
+    single-head pairs only, so the shortlisted pairs are 1.0 -> 2.3 alone (a group's name is no head label)."""
+    from composition.demo import PLANTED_CIRCUITS, build_demo
+    from composition.interpret.predict import shortlist
+    from composition.present.report import load_report_inputs
+
+    (lU, hU), (lR, hR) = PLANTED_CIRCUITS["suppressor"][:2]
+    options = ScanOptions(writers=f"{lU}.{hU}", responders=f"{lR}.{hR}", writer_groups=(f"solo={lU}.{hU}",))
+    path = run_scan(build_demo(tmp_path / "model"), tmp_path / "groups.h5", options).path
+    scan, heads = load_report_inputs(path)
+    assert [(c.label, [r["writer"] for r in c.writers]) for c in shortlist(scan, heads)] == [
+        (f"{lR}.{hR}", [f"{lU}.{hU}", "solo"])]
+    assert compare_scans([path, path]).shortlisted == [(lU, hU, lR, hR)]
