@@ -71,9 +71,9 @@ def parse_group(spec: str, n_layers: int, n_heads: int) -> WriterGroup:
     members: list[Head] = []
     for item in body.split("+"):
         item = item.strip()
-        m = re.fullmatch(r"(\d+)\.(\d+)", item)
+        m = re.fullmatch(r"(\d{1,9})\.(\d{1,9})", item)  # bounded like options' head labels: int() has a digit limit
         if not m:
-            raise CompositionError(f"{option} {name}: member {item!r} is not a head label L.H (e.g. 1.0).")
+            raise CompositionError(f"{option} {name}: member {item[:40]!r} is not a head label L.H (e.g. 1.0).")
         layer, head = int(m.group(1)), int(m.group(2))
         if layer >= n_layers:
             raise CompositionError(f"{option} {name}: member {item} names layer {layer}, but the model has layers "

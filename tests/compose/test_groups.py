@@ -109,6 +109,7 @@ def test_group_ov_matrix_and_the_kernel_take_any_inner_dimension(small, precisio
     ("noequals", "NAME=L.H"),
     ("1bad=1.0", "must start with a letter"),
     ("g=1.0+x", "not a head label"),
+    ("g=" + "1" * 5000 + ".0", "not a head label"),  # beyond Python's digit limit of int(): still a sentence
     ("g=7.0", "layers 0-2"),
     ("g=1.9", "heads 0-3"),
     ("g=1.0+1.0", "named twice"),
