@@ -130,26 +130,33 @@ def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_
     # table [V, d] -> (index [n, 2], {name: [n, ...]} of the /heads dtypes, done set)
     """
     ks = tuple(int(k) for k in ks)
-    n_rows = min(w.vocab_size, w.W_U.shape[1])  # diagonal exists for t < min(V_in, V_out)
-    n_keys = w.W_U.shape[1]
     fields = schema.unit_arrays("heads", len(heads), len(ks), HIST_BINS)
-    rows = torch.arange(n_rows)
     A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
     for j, h in enumerate(heads):
-        ranks = diagonal_midranks(A[h, :n_rows], B[h], rows=rows, block_rows=block_rows).numpy()  # [V]
-        s = summarise(ranks, n_keys, ks)
-        fields["top_share"][j] = s.top_share
-        fields["bottom_share"][j] = s.bottom_share
-        fields["mean_percentile"][j] = s.mean_percentile
-        fields["histogram"][j] = s.histogram
-        fields["rows_evaluated"][j] = s.rows
-        fields["p_value"][j] = s.p_value
-        fields["eigen_copying_score"][j] = eigen_copying_score(A[h, :n_rows], B[h, :n_rows])
-        fields["done"][j] = True
+        put_ov_profile(fields, j, A[h], B[h], ks, block_rows)
     fields.pop("label")
     fields.pop("q_value")
     index = np.array([[layer, h] for h in heads], dtype=np.int64).reshape(-1, 2)
     return index, fields
+
+
+def put_ov_profile(fields: dict[str, np.ndarray], j: int, A: torch.Tensor, B: torch.Tensor, ks, block_rows: int) -> None:
+    """Row ``j`` of a profile unit's ``fields``: the diagonal midranks of the OV token matrix ``A B^T``
+    over every row, their statistics and the eigenvalue copying score (a head's, or a writer group's).
+
+    # A [V, r], B [V_out, r]; the diagonal exists for t < min(V, V_out)
+    """
+    n_rows = min(A.shape[0], B.shape[0])
+    ranks = diagonal_midranks(A[:n_rows], B, rows=torch.arange(n_rows), block_rows=block_rows).numpy()  # [n_rows]
+    s = summarise(ranks, B.shape[0], tuple(int(k) for k in ks))
+    fields["top_share"][j] = s.top_share
+    fields["bottom_share"][j] = s.bottom_share
+    fields["mean_percentile"][j] = s.mean_percentile
+    fields["histogram"][j] = s.histogram
+    fields["rows_evaluated"][j] = s.rows
+    fields["p_value"][j] = s.p_value
+    fields["eigen_copying_score"][j] = eigen_copying_score(A[:n_rows], B[:n_rows])
+    fields["done"][j] = True
 
 
 def label_heads(arrays: dict[str, np.ndarray], fdr: float, min_effect: float) -> None:

@@ -161,23 +161,13 @@ def compute_group_head_unit(factors: SideFactors, unit: GroupHeadUnit, options):
     # -> ("group_heads", index [1, 1], {name: [1, ...]})
     """
     from ..compose.groups import group_readouts
-    from ..interpret.heads import eigen_copying_score
-    from ..score.ranks import diagonal_midranks
-    from ..score.stats import summarise
+    from ..interpret.heads import put_ov_profile
 
-    w = factors.w
     group = _group(factors, unit.spec)
-    n_rows = min(w.vocab_size, w.W_U.shape[1])  # the diagonal exists for t < min(V_in, V_out)
-    A = _group_values(factors, group)[:n_rows]  # [V, n dh]
-    B = group_readouts(w, group)  # [V_out, n dh]
-    ranks = diagonal_midranks(A, B, rows=torch.arange(n_rows), block_rows=options.block_rows).numpy()  # [V]
-    s = summarise(ranks, w.W_U.shape[1], tuple(int(k) for k in options.k))
+    A = _group_values(factors, group)  # [V, n dh]
+    B = group_readouts(factors.w, group)  # [V_out, n dh]
     fields = _fields("group_heads", 1, options)
-    for name, value in (("top_share", s.top_share), ("bottom_share", s.bottom_share),
-                        ("mean_percentile", s.mean_percentile), ("histogram", s.histogram),
-                        ("rows_evaluated", s.rows), ("p_value", s.p_value),
-                        ("eigen_copying_score", eigen_copying_score(A, B[:n_rows])), ("done", True)):
-        fields[name][0] = value
+    put_ov_profile(fields, 0, A, B, options.k, options.block_rows)
     fields.pop("label")
     fields.pop("q_value")
     return "group_heads", np.array([[unit.group]], dtype=np.int64), fields

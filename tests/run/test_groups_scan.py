@@ -19,6 +19,7 @@ import pytest
 from composition import load_weights
 from composition.compose.groups import WriterGroup, group_statistics
 from composition.extract.tables import TableOptions, token_table
+from composition.interpret.heads import load_heads
 from composition.run.scan import ScanOptions, run_scan
 from composition.store.scanfile import journal_path, load_scan
 
@@ -37,7 +38,8 @@ def model(tmp_path_factory):
 def test_one_member_group_equals_the_single_writer_scan(model, tmp_path):
     """A one-member group's stored pairs are byte for byte its member's pairs, in the same scan (labels and
     q-values too: one Benjamini-Hochberg family, equal p-values give equal q-values) and in a scan without
-    the group (every statistic before labelling). Source: docs/groups.md §1 (a group of one is its member)."""
+    the group (every statistic before labelling); its OV profile is its member's head profile. Source: docs/groups.md §1
+    (a group of one is its member)."""
     plain = run_scan(model, tmp_path / "plain.h5", ScanOptions(writers="1.2", responders="2"))
     scan = run_scan(model, tmp_path / "solo.h5", ScanOptions(writers="1.2", responders="2",
                                                              writer_groups=("solo=1.2",)))
@@ -52,6 +54,11 @@ def test_one_member_group_equals_the_single_writer_scan(model, tmp_path):
     assert list(table["writer"]) == ["solo"] * 4 and list(table["writer_group"]) == ["solo"] * 4
     assert (table["writer_layer"] == -1).all() and (table["writer_head"] == -1).all()
     np.testing.assert_array_equal(table["mean_percentile"], scan.pairs()["mean_percentile"])
+    heads = load_heads(scan.path).heads  # the group's OV profile is its member's head profile
+    for name in ("top_share", "bottom_share", "mean_percentile", "histogram", "rows_evaluated", "p_value"):
+        np.testing.assert_array_equal(scan.groups["group_heads"][name][0], heads[name][1, 2], err_msg=name)
+    assert scan.groups["group_heads"]["eigen_copying_score"][0] == pytest.approx(heads["eigen_copying_score"][1, 2],
+                                                                                abs=1e-12)
 
 
 def test_two_member_group_equals_group_statistics_and_dense_ranks(tmp_path):
