@@ -28,6 +28,7 @@ import numpy as np
 from ..compose import sides
 from ..compose.sides import Words
 from ..errors import CompositionError
+from ..store.atomic import write_bytes
 from ..store.scanfile import CAUTION, Scan, load_scan, require_complete
 
 # scan-file attributes that must agree (attribute -> words for the sentence)
@@ -165,8 +166,7 @@ class Comparison:
         files["pairs"] = _write_csv(out / "pairs_by_scan.csv", self.tidy_rows(), tidy_header)
         if len(self.names) >= 3:
             files["trajectories"] = trajectory_figure(self, out / "trajectories.png")
-        (out / "compare.txt").write_text(self.summary() + "\n", encoding="utf-8")
-        files["summary"] = out / "compare.txt"
+        files["summary"] = write_bytes(out / "compare.txt", (self.summary() + "\n").encode("utf-8"), what="summary")
         return files
 
     def strongest_pairs(self, n: int = TRAJECTORY_PAIRS) -> list[int]:
@@ -182,15 +182,16 @@ _CHANGE_HEADER = [*_PAIR_HEADER, "scan_before", "scan_after", "label_before", "l
 
 
 def _write_csv(path: Path, rows: list[dict], header: list[str]) -> Path:
-    """Rows of dicts as CSV; floats with repr precision, integers as integers."""
+    """Rows of dicts as CSV; floats with repr precision, integers as integers; through the atomic writer."""
     import csv
+    import io
 
-    with open(path, "w", newline="", encoding="utf-8") as f:
-        out = csv.writer(f)
-        out.writerow(header)
-        for row in rows:
-            out.writerow([row.get(name, "") for name in header])
-    return path
+    text = io.StringIO(newline="")
+    out = csv.writer(text)
+    out.writerow(header)
+    for row in rows:
+        out.writerow([row.get(name, "") for name in header])
+    return write_bytes(path, text.getvalue().encode("utf-8"), what="CSV file")
 
 
 def _pair_columns(idx) -> dict:

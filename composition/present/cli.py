@@ -277,10 +277,7 @@ def shortlist(scan_file, heads_file, csv_file, parts):
     if parts:
         _print_mediation(scan_data, [p for p in parts.split(",") if p.strip()])
     if csv_file:
-        try:
-            write_csv(csv_file, shortlist_rows(candidates))
-        except OSError as exc:
-            raise CompositionError(f"cannot write {csv_file} ({exc.strerror}).") from None
+        write_csv(csv_file, shortlist_rows(candidates))  # an unwritable path: one sentence (store.atomic)
         click.echo(f"wrote {csv_file}")
 
 

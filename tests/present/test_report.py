@@ -117,7 +117,7 @@ def test_demo_compensation_map_marks_exactly_the_planted_pairs(demo, report_dir)
 
 def test_shortlist_command_prints_and_writes_csv(demo, tmp_path):
     """`composition shortlist SCAN.h5 --csv FILE` prints the table and writes one CSV row per
-    (head, writer); a scan without head profiles costs one line and exit status 2.
+    (head, writer); a symlink at FILE and a scan without head profiles each cost one line and exit status 2.
 
     Common practice, no source.
     """
@@ -129,6 +129,11 @@ def test_shortlist_command_prints_and_writes_csv(demo, tmp_path):
     with open(out) as f:
         rows = list(csv.DictReader(f))
     assert len(rows) == sum(len(c.writers) for c in shortlist(scan, heads))
+    victim, planted = tmp_path / "victim.txt", tmp_path / "planted.csv"
+    victim.write_text("kept")
+    planted.symlink_to(victim)  # README: files are never written through a symlink
+    r = CliRunner().invoke(main, ["shortlist", str(root / "scan.h5"), "--csv", str(planted)])
+    assert r.exit_code == 2 and "symbolic link" in r.output and victim.read_text() == "kept"
     import h5py
 
     bare = tmp_path / "bare.h5"

@@ -26,6 +26,7 @@ from ...errors import CompositionError
 from ...interpret.heads import KINDS, HeadData, load_heads
 from ...compose import sides
 from ...interpret.predict import PREDICTION_WORDS, scan_compensation, shortlist, side_notes
+from ...store.atomic import write_bytes
 from ...store.scanfile import Scan, load_scan, require_complete
 from . import figures as fg
 from .csvfiles import write_csv
@@ -207,8 +208,7 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
         explorer = interactive.section(scan, heads, comp, maps, words, sampling)
         html = page.render(scan, heads, candidates, comp, figs, tables, out, words, sampling, explorer, mediation)
         html = html.replace('<h2 id="pairs">', page.beyond_html(scan, words) + '<h2 id="pairs">', 1)
-        index = out / "index.html"
-        index.write_text(html, encoding="utf-8")
+        index = write_bytes(out / "index.html", html.encode("utf-8"), what="report page")
     except OSError as exc:
         raise CompositionError(f"cannot write the report into {out} ({exc.strerror or exc}).") from None
     return index

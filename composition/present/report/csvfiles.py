@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import csv
+import io
 from pathlib import Path
 
 import numpy as np
+
+from ...store.atomic import write_bytes
 
 
 def _cell(value) -> str:
@@ -26,15 +29,15 @@ def columns_to_rows(table: dict[str, np.ndarray]) -> list[dict]:
 
 
 def write_csv(path: str | Path, rows: list[dict] | dict[str, np.ndarray], header: list[str] | None = None) -> Path:
-    """Write ``rows`` (a list of dicts or a dict of columns) to ``path``."""
+    """Write ``rows`` (a list of dicts or a dict of columns) to ``path``, through the atomic writer
+    (store.atomic: never through a symlink or over anything but a regular file)."""
     if isinstance(rows, dict):
         header = header or list(rows)
         rows = columns_to_rows(rows)
     header = header or (list(rows[0]) if rows else [])
-    path = Path(path)
-    with open(path, "w", newline="", encoding="utf-8") as f:
-        out = csv.writer(f)
-        out.writerow(header)
-        for row in rows:
-            out.writerow([_cell(row.get(name, "")) for name in header])
-    return path
+    text = io.StringIO(newline="")
+    out = csv.writer(text)
+    out.writerow(header)
+    for row in rows:
+        out.writerow([_cell(row.get(name, "")) for name in header])
+    return write_bytes(Path(path), text.getvalue().encode("utf-8"), what="CSV file")
