@@ -146,7 +146,7 @@ def pair_detail(w: Weights, writer: Head, responder: Head, options: TableOptions
                       _head_write(w, T, writer, ks), _head_write(w, T, responder, ks), vocabulary, chosen)
 
 
-def check_scan(scan, detail: PairDetail, w: Weights) -> None:
+def check_scan(scan, detail: PairDetail) -> None:
     """A scan file given to ``pair --scan`` must be of the side and part asked for (that it is of
     this model is checked before any computation, by ``composition.store.scanfile.check_matches``)."""
     found = sides.for_scan(scan.attrs)

@@ -344,7 +344,7 @@ def pair(checkpoint, writer, responder, tokens, top, scan_file, csv_file, figure
     if scan_file:
         from ..interpret.predict import pair_prediction
 
-        check_scan(scan_data, detail, w)
+        check_scan(scan_data, detail)
         scan_lines = terminal.scan_prediction(scan_file, pair_prediction(scan_data, head_data, u, r), scan_data)
     _echo(terminal.pair(detail, kw["ks"], kw["table"], kw["orientation"], top, chosen, w.readout, scan_lines))
     if csv_file:
