@@ -198,14 +198,14 @@ def write_report(scan_path: str | os.PathLike, out_dir: str | os.PathLike,
         maps = heatmaps(scan, heads, comp, words, sampling)
         figs = ([_draw(m, out / "figures", svg) for m in maps]
                 + _other_figures(scan, heads, candidates, words, out / "figures", svg))
-        tables = write_tables(scan, heads, candidates, comp, out / "tables", sampling.row())
+        tables = write_tables(scan, heads, candidates, out / "tables", sampling.row())
         if mediation:
             tables["mediation"] = write_csv(out / "tables" / "mediation.csv", with_pair_ids(mediation))
         if scan.group_names:
             tables["group_pairs"] = write_csv(out / "tables" / "group_pairs.csv", scan.group_pairs())
         if "references" in scan.groups:
             tables["references"] = write_csv(out / "tables" / "references.csv", page.references_rows(scan))
-        explorer = interactive.section(scan, heads, comp, maps, words, sampling)
+        explorer = interactive.section(scan, comp, maps, words, sampling)
         html = page.render(scan, heads, candidates, comp, figs, tables, out, words, sampling, explorer, mediation)
         html = html.replace('<h2 id="pairs">', page.beyond_html(scan, words) + '<h2 id="pairs">', 1)
         index = write_bytes(out / "index.html", html.encode("utf-8"), what="report page")

@@ -31,7 +31,7 @@ def _int(values: np.ndarray) -> list:
     return [int(v) for v in np.asarray(values).tolist()]
 
 
-def explorer_data(scan, heads, comp: dict, maps: list, words, sampling) -> dict:
+def explorer_data(scan, comp: dict, maps: list, words, sampling) -> dict:
     """Everything the explorer draws, as plain lists (one entry per pair shown by any heatmap)."""
     L, H = scan.label.shape[:2]
     ms_any = np.zeros(scan.done.shape, bool)
@@ -80,9 +80,9 @@ def explorer_data(scan, heads, comp: dict, maps: list, words, sampling) -> dict:
     return data
 
 
-def section(scan, heads, comp: dict, maps: list, words, sampling) -> str:
+def section(scan, comp: dict, maps: list, words, sampling) -> str:
     """The explorer's HTML: controls, the map, the side panel, the data and the script."""
-    data = json.dumps(explorer_data(scan, heads, comp, maps, words, sampling), separators=(",", ":"))
+    data = json.dumps(explorer_data(scan, comp, maps, words, sampling), separators=(",", ":"))
     data = data.replace("</", "<\\/")
     return f"""<h2 id="explorer">Explorer: find any pair</h2>
 <p class="muted">Pick a statistic; hover a cell for writer, responder, value, label, q-value and rows evaluated;

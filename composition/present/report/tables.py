@@ -53,7 +53,7 @@ def pairs_columns(scan: Scan, heads: HeadData) -> dict[str, np.ndarray]:
     return _ids_first(table)
 
 
-def write_tables(scan: Scan, heads: HeadData, candidates: list[Candidate], comp: dict, out: Path,
+def write_tables(scan: Scan, heads: HeadData, candidates: list[Candidate], out: Path,
                  sampling_row: dict) -> dict[str, Path]:
     """Write every CSV table of the report into ``out``; return {name: path}."""
     tables = {}
