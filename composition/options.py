@@ -227,9 +227,6 @@ class ScanOptions:
     seed: int = 0
     until_ci: float | None = None  # sequential looks until every share's interval is this narrow
     first_rows: int = DEFAULT_FIRST_ROWS
-
-    def sampling(self) -> Sampling:
-        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
     # which path and which part of the write (docs/methods.md §3, §3b; in the fingerprint)
     side: str = "query"  # query | key | value (docs/methods.md §3, §3b)
     query_part: str = "full"  # full | unembed | rest: the part of the write the query side uses
@@ -238,6 +235,10 @@ class ScanOptions:
     references: bool = False  # identity, unembedding and random-band references of every responder
     reference_draws: int = 39  # draws of the random band (composition.compose.references.DEFAULT_DRAWS)
     reference_seed: int = 0
+
+    def sampling(self) -> Sampling:
+        """Which rows each pair evaluates (composition.score.sampling)."""
+        return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
 
     def validate(self) -> None:
         """Every check of the options above that needs no model (``check_for_model`` does the rest)."""
