@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-LABEL_FILL = -128  # int8 label of a pair or head not computed (== score.stats.LABEL_NOT_COMPUTED)
+from ..score.stats import LABEL_NOT_COMPUTED as LABEL_FILL  # int8 label of a pair or head not computed
 
 PAIR_AXES = ("writer_layer", "writer_head", "responder_layer", "responder_head")
 HEAD_AXES = ("layer", "head")
