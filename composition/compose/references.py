@@ -32,7 +32,7 @@ import numpy as np
 import torch
 
 from ..errors import CompositionError
-from ..extract.tables import norm_linear_part
+from ..extract.tables import apply_norm, norm_linear_part
 from ..extract.weights import Weights
 from .factors import input_norm, residual_path, unembed_directions, unembed_queries
 
@@ -107,8 +107,6 @@ def random_writer(w: Weights, table: torch.Tensor, responder_layer: int, draw: i
 
 def _normed(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
     """``N_l(T)`` as the writer values see it. # [V, d] -> [V, d]"""
-    from ..extract.tables import apply_norm
-
     return apply_norm(input_norm(w, layer), table.double())
 
 
