@@ -59,6 +59,9 @@ HEAD_LABEL_WORDS = {1: "copying", -1: "suppressing", 0: "neutral"}
 BASELINE_DRAWS = 200
 BASELINE_SEED = 0
 KINDS = ("q", "k", "v")
+# the model-space scores of every pair (docs/methods.md §7), in the order of the tables
+MODEL_SPACE_SCORES = (*(f"{kind}_composition" for kind in KINDS), *(f"projection_kernel_{kind}" for kind in KINDS),
+                      *(f"kernel_random_mean_{kind}" for kind in KINDS))
 
 
 # ---------------------------------------------------------------------------

@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..compose import sides
-from .heads import HEAD_LABEL_WORDS, HeadData
+from .heads import HEAD_LABEL_WORDS, MODEL_SPACE_SCORES, HeadData
 from ..store.scanfile import Scan
 from ..score.stats import LABEL_NOT_COMPUTED
 
@@ -101,9 +101,7 @@ def pair_table(scan: Scan, heads: HeadData | None = None) -> dict[str, np.ndarra
     idx = np.argwhere(scan.done)  # [P, 4]
     sel = tuple(idx.T)
     ms = heads.model_space
-    for name in ("q_composition", "k_composition", "v_composition",
-                 "projection_kernel_q", "projection_kernel_k", "projection_kernel_v",
-                 "kernel_random_mean_q", "kernel_random_mean_k", "kernel_random_mean_v"):
+    for name in MODEL_SPACE_SCORES:
         table[name] = ms[name][sel]
     for kind in ("q", "k", "v"):
         mean, sd = heads.baseline(kind)

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ...interpret.heads import HeadData
+from ...interpret.heads import MODEL_SPACE_SCORES, HeadData
 from ...interpret.predict import Candidate, pair_table, shortlist_rows
 from ...store.scanfile import Scan
 from .csvfiles import write_csv
@@ -66,8 +66,7 @@ def write_tables(scan: Scan, heads: HeadData, candidates: list[Candidate], out: 
     mst = dict(zip(PAIR_IDS, idx.T))
     mst["writer"] = np.array([f"{a}.{b}" for a, b in idx[:, :2]])
     mst["responder"] = np.array([f"{a}.{b}" for a, b in idx[:, 2:]])
-    for name in ("q_composition", "k_composition", "v_composition", "projection_kernel_q", "projection_kernel_k",
-                 "projection_kernel_v", "kernel_random_mean_q", "kernel_random_mean_k", "kernel_random_mean_v"):
+    for name in MODEL_SPACE_SCORES:
         mst[name] = ms[name][sel]
     tables["model_space"] = write_csv(out / "model_space.csv", mst)
     rows = with_pair_ids([{**r, "responder": r["head"]} for r in shortlist_rows(candidates)])
