@@ -134,9 +134,14 @@ def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_
     n_keys = w.W_U.shape[1]
     fields = schema.unit_arrays("heads", len(heads), len(ks), HIST_BINS)
     rows = torch.arange(n_rows)
-    A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
+    # memory: the profiled heads' values and one head's readout at a time (the same bits as ov_factors)
+    A = writer_values(w, table, layer, heads)  # [n, V, dh]
+    lin_f = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
+    W_U = w.W_U.double()  # [d, V_out]
     for j, h in enumerate(heads):
-        ranks = diagonal_midranks(A[h, :n_rows], B[h], rows=rows, block_rows=block_rows).numpy()  # [V]
+        W_O = w.layers[layer].attn.W_O[h:h + 1].double()  # [1, dh, d]
+        B = torch.einsum("hed,df,fv->hev", W_O, lin_f, W_U)[0].T.contiguous()  # [V_out, dh]
+        ranks = diagonal_midranks(A[j, :n_rows], B, rows=rows, block_rows=block_rows).numpy()  # [V]
         s = summarise(ranks, n_keys, ks)
         fields["top_share"][j] = s.top_share
         fields["bottom_share"][j] = s.bottom_share
@@ -144,7 +149,7 @@ def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_
         fields["histogram"][j] = s.histogram
         fields["rows_evaluated"][j] = s.rows
         fields["p_value"][j] = s.p_value
-        fields["eigen_copying_score"][j] = eigen_copying_score(A[h, :n_rows], B[h, :n_rows])
+        fields["eigen_copying_score"][j] = eigen_copying_score(A[j, :n_rows], B[:n_rows])
         fields["done"][j] = True
     fields.pop("label")
     fields.pop("q_value")
@@ -322,13 +327,40 @@ def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int
     def gauss():
         return torch.from_numpy(rng.standard_normal((draws, d, dh)))  # [n, d, dh] float64
 
-    wp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
-    rp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
-    den = {"q": rp.qk_norm2, "k": rp.qk_norm2, "v": rp.ov_norm2}
+    # The writer's and the responder's factors are drawn in this order: ov_in, ov_out, q, k (as
+    # HeadFactors); each is reduced as soon as what it pairs with is drawn (the arithmetic of
+    # _prepare, step by step), so at most four [n, d, dh] arrays are held at once.
+    G_in = _gram(gauss())  # writer: ov_in
+    ov_out = gauss()
+    G_out = _gram(ov_out)
+    writer_z = ov_out @ _sqrt_psd(G_in)  # [n, d, dh]
+    ov_norm2 = (G_in * G_out).sum((-1, -2))  # [n]
+    del ov_out
+    gauss(), gauss()  # the writer's q and k: drawn (they fix the stream), not used by the baseline
+
+    def paired(z):  # [n, d, dh] -> [n]
+        return (writer_z.transpose(1, 2) @ z).pow(2).sum((-1, -2))
+
+    r_in = gauss()  # responder: ov_in, ov_out
+    G_in_r = _gram(r_in)
+    r_out = gauss()
+    G_out_r = _gram(r_out)
+    del r_out
+    num2 = {"v": paired(r_in @ _sqrt_psd(G_out_r))}
+    del r_in
+    r_q = gauss()  # responder: q, k
+    G_q = _gram(r_q)
+    r_k = gauss()
+    G_k = _gram(r_k)
+    num2["q"] = paired(r_q @ _sqrt_psd(G_k))
+    del r_q
+    num2["k"] = paired(r_k @ _sqrt_psd(G_q))
+    del r_k
+    den = {"q": (G_q * G_k).sum((-1, -2)), "v": (G_in_r * G_out_r).sum((-1, -2))}
+    den["k"] = den["q"]
     out = {}
     for kind in KINDS:
-        num2 = (wp.writer_z.transpose(1, 2) @ rp.responder_z[kind]).pow(2).sum((-1, -2))  # [n] paired
-        s = _ratio(num2, wp.ov_norm2 * den[kind])
+        s = _ratio(num2[kind], ov_norm2 * den[kind])
         out[kind] = (float(s.mean()), float(s.std()))
     return out
 
@@ -349,16 +381,27 @@ def projection_kernel(Q1: torch.Tensor, Q2: torch.Tensor) -> float:
 
 
 class ModelSpace:
-    """The per-layer reductions the model-space units need, built once per layer and kept."""
+    """The per-layer reductions the model-space units need, built when a unit asks for them.
+
+    Only the last writer layer's is kept: a unit holds its own layer and one group of later
+    layers (GPT-2 small: 0.2 GB) instead of every layer (0.45 GB); a layer's reduction is
+    recomputed for each unit that reads it (a few tens of milliseconds, the same bits)."""
 
     def __init__(self, w: Weights):
         self.w = w
-        self._prepared: dict[int, _Prepared] = {}
+        self._kept: tuple[int, _Prepared] | None = None
 
     def prepared(self, layer: int) -> _Prepared:
-        if layer not in self._prepared:
-            self._prepared[layer] = _prepare(layer_factors(self.w, layer))
-        return self._prepared[layer]
+        if self._kept is not None and self._kept[0] == layer:
+            return self._kept[1]
+        return _prepare(layer_factors(self.w, layer))
+
+    def writer(self, layer: int) -> _Prepared:
+        """The reduction of a writer layer, kept until another writer layer is asked for."""
+        if self._kept is None or self._kept[0] != layer:
+            self._kept = None
+            self._kept = (layer, _prepare(layer_factors(self.w, layer)))
+        return self._kept[1]
 
 
 def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, np.ndarray]]:
@@ -374,7 +417,7 @@ def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, 
     for name, decl in schema.datasets("model_space").items():
         shape = decl.shape(L, H, 0, 0)[1:]
         out[name] = np.full((1,) + shape, decl.fill, dtype=decl.dtype)
-    mine = space.prepared(lU)
+    mine = space.writer(lU)
     out["write_dim"][0] = mine.bases["out"][1]  # [H] rank of W_O
     for kind in KINDS:
         out[f"read_dim_{kind}"][0] = mine.bases[kind][1]
@@ -384,12 +427,14 @@ def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, 
             torch.cat([p.ov_norm2 for p in later]), torch.cat([p.qk_norm2 for p in later]), None,
             {kind: torch.cat([p.responder_z[kind] for p in later]) for kind in KINDS},
             {kind: (torch.cat([p.bases[kind][0] for p in later]), None) for kind in KINDS})
+        read_dims = {kind: np.stack([p.bases[kind][1] for p in later]) for kind in KINDS}  # [n, H] each
+        del later  # the group's reductions, now concatenated
         scores, kernels = _pair_scores(mine, responders)  # {kind: [H, len(group) H]}
         sl = slice(group[0], group[-1] + 1)
         for kind in KINDS:
             out[f"{kind}_composition"][0, :, sl, :] = scores[kind].numpy().reshape(H, len(group), H)
             out[f"projection_kernel_{kind}"][0, :, sl, :] = kernels[kind].numpy().reshape(H, len(group), H)
-            read = np.stack([p.bases[kind][1] for p in later])  # [n, H]
+            read = read_dims[kind]  # [n, H]
             dims = np.einsum("a,lb->alb", out["write_dim"][0], read)  # [H, n, H]
             out[f"kernel_random_mean_{kind}"][0, :, sl, :] = dims / d
     out["done"][0] = True

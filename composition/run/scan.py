@@ -29,7 +29,7 @@ from .._version import __version__
 from ..errors import CompositionError
 from ..extract import load_weights
 from ..extract.rotary import offsets_rotation
-from ..extract.tables import TableOptions, token_table
+from ..extract.tables import TableOptions, release_table_inputs, token_table
 from ..extract.weights import Weights
 from ..compose.sides import SideFactors
 from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
@@ -90,6 +90,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     table = _checked_table(w, options)  # [V, d]: every model-dependent fault is found before the file exists
     units = work_units(pairs) + final_units(w, pairs)
     attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
+    w = release_table_inputs(w)  # table and fingerprint are done: the embedding copy and MLP weights go
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
     groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
               "heads": schema.empty("heads", w.n_layers, w.n_heads, len(ks), HIST_BINS),
@@ -170,9 +171,11 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
         run_units(pair_todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
                   address=execution["cluster"], workers=execution["workers"])
     elif pair_todo:
-        factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets))
+        scanned = {u.writer for _, u in pair_todo} | {(u.responder_layer, h) for _, u in pair_todo for h in u.responder_heads}
+        factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets), heads=scanned)
         for i, unit in pair_todo:
             commit(i, compute_unit(factors, unit, options))
+        del factors  # the per-layer factors and packed keys go before the head profiles
     space = ModelSpace(w)
     ks = tuple(int(k) for k in options.k)
     for i, unit in final_todo:
