@@ -136,6 +136,7 @@ def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_
     rows = torch.arange(n_rows)
     # memory: the profiled heads' values and one head's readout at a time (the same bits as ov_factors)
     A = writer_values(w, table, layer, heads)  # [n, V, dh]
+    del table  # a caller that handed over its last reference frees the table here
     lin_f = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
     W_U = w.W_U.double()  # [d, V_out]
     for j, h in enumerate(heads):

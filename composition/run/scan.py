@@ -91,6 +91,8 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     units = work_units(pairs) + final_units(w, pairs)
     attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
     w = release_table_inputs(w)  # table and fingerprint are done: the embedding copy and MLP weights go
+    tables = [table]  # handed to _complete, which releases the table after its last use
+    del table
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
     groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
               "heads": schema.empty("heads", w.n_layers, w.n_heads, len(ks), HIST_BINS),
@@ -101,7 +103,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
                 store = _open_store(out, attrs, groups, overwrite, w)
             with store:
                 if not store.complete:
-                    _complete(store, run, guard, w, attrs, options, table,
+                    _complete(store, run, guard, w, attrs, options, tables,
                               dict(checkpoint=checkpoint, cluster=cluster, workers=workers,
                                    worker_checkpoint=worker_checkpoint))
         except Interrupt as stop:
@@ -150,7 +152,7 @@ def _clean_if_nothing_committed(out: Path, run: "_Run") -> None:
 
 
 def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: dict, options: ScanOptions,
-              table, execution: dict) -> None:
+              tables: list, execution: dict) -> None:
     """Compute the missing units (pairs, then head profiles, then model-space scores), committing
     each as it comes, then label all pairs and heads and finish: one transaction."""
     run.begin(store)
@@ -172,15 +174,17 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
                   address=execution["cluster"], workers=execution["workers"])
     elif pair_todo:
         scanned = {u.writer for _, u in pair_todo} | {(u.responder_layer, h) for _, u in pair_todo for h in u.responder_heads}
-        factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets), heads=scanned)
+        factors = SideFactors(w, tables[0], offsets_rotation(w, options.rotary_offsets), heads=scanned)
         for i, unit in pair_todo:
             commit(i, compute_unit(factors, unit, options))
         del factors  # the per-layer factors and packed keys go before the head profiles
     space = ModelSpace(w)
     ks = tuple(int(k) for k in options.k)
+    last_head = max((i for i, u in final_todo if isinstance(u, HeadUnit)), default=None)
     for i, unit in final_todo:
-        if isinstance(unit, HeadUnit):
-            commit(i, ("heads", *profile_layer(w, table, unit.layer, unit.heads, ks, options.block_rows)))
+        if isinstance(unit, HeadUnit):  # the last head unit takes the table's last reference (and drops it)
+            commit(i, ("heads", *profile_layer(w, tables.pop() if i == last_head else tables[0], unit.layer,
+                                               unit.heads, ks, options.block_rows)))
         else:
             commit(i, ("model_space", *model_space_unit(space, unit.writer_layer)))
     group_attrs = {"heads": head_attrs(w, TableOptions(options.table, options.position), ks, options.fdr,
