@@ -42,6 +42,7 @@ from ..store.atomic import check_target, remove_quietly, special_kind
 from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, STATUS_COMPLETE, Scan, ScanStore,
                               ScanWriteError, empty_pairs, journal_path, load_scan, read_scan_groups,
                               settings_change)
+from .memory import return_freed
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
 from .units import WorkUnit, compute_unit, scan_pairs, unit_factors, work_units  # noqa: F401
@@ -93,6 +94,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     w = release_table_inputs(w)  # table and fingerprint are done: the embedding copy and MLP weights go
     tables = [table]  # handed to _complete, which releases the table after its last use
     del table
+    return_freed()
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
     groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
               "heads": schema.empty("heads", w.n_layers, w.n_heads, len(ks), HIST_BINS),
@@ -136,7 +138,7 @@ def _checked_table(w: Weights, options: ScanOptions):
     import torch
 
     T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
-    if not torch.isfinite(T).all():
+    if not all(bool(torch.isfinite(T[s:s + 4096]).all()) for s in range(0, T.shape[0], 4096)):  # no [V, d] temporary
         raise CompositionError(
             f"the token table of {w.source} ({options.table}) is not finite: check the config's norm epsilon "
             "(layer_norm_epsilon / layer_norm_eps / rms_norm_eps) and activation, and the weights' sizes.")
@@ -178,6 +180,7 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
         for i, unit in pair_todo:
             commit(i, compute_unit(factors, unit, options))
         del factors  # the per-layer factors and packed keys go before the head profiles
+        return_freed()
     space = ModelSpace(w)
     ks = tuple(int(k) for k in options.k)
     last_head = max((i for i, u in final_todo if isinstance(u, HeadUnit)), default=None)
