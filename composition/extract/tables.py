@@ -165,6 +165,12 @@ def release_table_inputs(w: Weights) -> Weights:
     return dataclasses.replace(w, W_E=W_E, layers=_layers_without_mlp(w.layers))
 
 
+def table_inputs(w: Weights) -> Weights:
+    """The part of the weights the token table reads: the embedding, positions and layer 0
+    (a one-layer view of ``w``; the other layers are not held for it)."""
+    return dataclasses.replace(w, layers=(w.layers[0],))
+
+
 _EMPTY = torch.empty(0)
 
 

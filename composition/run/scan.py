@@ -29,7 +29,7 @@ from .._version import __version__
 from ..errors import CompositionError
 from ..extract import load_weights
 from ..extract.rotary import offsets_rotation
-from ..extract.tables import TableOptions, release_table_inputs, token_table
+from ..extract.tables import TableOptions, release_table_inputs, table_inputs, token_table
 from ..extract.weights import Weights
 from ..compose.sides import SideFactors
 from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
@@ -88,12 +88,11 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     pairs = scan_pairs(w, options)
     ks = tuple(int(k) for k in options.k)
     _check_model_options(w, options)
-    table = _checked_table(w, options)  # [V, d]: every model-dependent fault is found before the file exists
     units = work_units(pairs) + final_units(w, pairs)
-    attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
-    w = release_table_inputs(w)  # table and fingerprint are done: the embedding copy and MLP weights go
-    tables = [table]  # handed to _complete, which releases the table after its last use
-    del table
+    attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))  # the fingerprint reads every tensor
+    w, table_w = release_table_inputs(w), table_inputs(w)  # from here only the table reads the MLP weights
+    tables = [_checked_table(table_w, options)]  # [V, d]: every model fault is found before the file exists
+    del table_w  # _complete releases the table after its last use
     return_freed()
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
     groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
