@@ -46,6 +46,7 @@ import torch
 
 from ..errors import CompositionError
 from ..compose.factors import input_norm, writer_values
+from ..memory import return_freed
 from ..score.ranks import diagonal_midranks
 from ..store import schema
 from ..store.atomic import atomic_write, check_target, special_kind
@@ -138,10 +139,10 @@ def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_
     A = writer_values(w, table, layer, heads)  # [n, V, dh]
     del table  # a caller that handed over its last reference frees the table here
     lin_f = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
-    W_U = w.W_U.double()  # [d, V_out]
     for j, h in enumerate(heads):
         W_O = w.layers[layer].attn.W_O[h:h + 1].double()  # [1, dh, d]
-        B = torch.einsum("hed,df,fv->hev", W_O, lin_f, W_U)[0].T.contiguous()  # [V_out, dh]
+        B = torch.einsum("hed,df,fv->hev", W_O, lin_f, w.W_U.double())[0].T.contiguous()  # [V_out, dh]
+        return_freed()  # the float64 unembedding is gone before the ranks run
         ranks = diagonal_midranks(A[j, :n_rows], B, rows=rows, block_rows=block_rows).numpy()  # [V]
         s = summarise(ranks, n_keys, ks)
         fields["top_share"][j] = s.top_share

@@ -213,7 +213,7 @@ def baseline_bytes() -> int:
     if not _baseline:
         code = ("import torch, composition.run.scan, composition.score.ranks\n"
                 "torch.ones(64, 64) @ torch.ones(64, 64)\n"
-                "from composition.run.memory import resident_bytes\nprint(resident_bytes())")
+                "from composition.memory import resident_bytes\nprint(resident_bytes())")
         env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(Path(__file__).resolve().parents[2]),
                                                                           os.environ.get("PYTHONPATH")])))
         try:

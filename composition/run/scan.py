@@ -42,7 +42,7 @@ from ..store.atomic import check_target, remove_quietly, special_kind
 from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, STATUS_COMPLETE, Scan, ScanStore,
                               ScanWriteError, empty_pairs, journal_path, load_scan, read_scan_groups,
                               settings_change)
-from .memory import return_freed
+from ..memory import return_freed
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
 from .units import WorkUnit, compute_unit, scan_pairs, unit_factors, work_units  # noqa: F401

@@ -49,7 +49,7 @@ _PEAK_CHILD = r"""
 import json, sys, torch
 torch.set_num_threads(1)
 from composition.run.scan import ScanOptions, run_scan
-from composition.run.memory import peak_resident_bytes
+from composition.memory import peak_resident_bytes
 run_scan(sys.argv[1], sys.argv[2], ScanOptions(**json.loads(sys.argv[3])), overwrite=True)
 print(peak_resident_bytes())
 """

@@ -15,6 +15,7 @@ import torch
 
 from .. import factors as fx
 from ...extract.weights import Weights
+from ...memory import return_freed
 
 Head = tuple[int, int]
 
@@ -56,6 +57,7 @@ class SideFactors:
         if name not in self._held or self._held[name][0] != key:
             self._held.pop(name, None)  # the old factor goes before the new one is built
             self._held[name] = (key, build())
+            return_freed()  # the build's temporaries go back to the system
         return self._held[name][1]
 
     def values(self, layer: int):  # -> [H, V, dh] or {head: [V, dh]}  A_U = N_l(T) W_V
