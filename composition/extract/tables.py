@@ -22,6 +22,7 @@ from dataclasses import dataclass
 import torch
 
 from ..errors import CompositionError
+from ..memory import return_freed
 from ._build import LazyLayers
 from .weights import MLP, Attention, Layer, Norm, Weights
 
@@ -187,7 +188,11 @@ def _layers_without_mlp(layers):
     cache of full layers is dropped with the old weights."""
     load = getattr(layers, "_load", None)
     if isinstance(layers, LazyLayers) and load is not None:
-        return LazyLayers(len(layers), lambda i: _without_mlp(load(i)))
+        def released(i: int) -> Layer:
+            layer = _without_mlp(load(i))
+            return_freed()  # the MLP tensors just read (each under the C library's mapping threshold)
+            return layer
+        return LazyLayers(len(layers), released)
     return tuple(_without_mlp(layers[i]) for i in range(len(layers)))
 
 

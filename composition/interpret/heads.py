@@ -439,6 +439,8 @@ def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, 
             read = read_dims[kind]  # [n, H]
             dims = np.einsum("a,lb->alb", out["write_dim"][0], read)  # [H, n, H]
             out[f"kernel_random_mean_{kind}"][0, :, sl, :] = dims / d
+        del responders, scores, kernels  # before the next group's reductions are built
+        return_freed()
     out["done"][0] = True
     return np.array([[lU]], dtype=np.int64), out
 
