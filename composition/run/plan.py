@@ -203,7 +203,7 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
 
 
 _MiB = 2**20
-_RUNTIME = 64 * _MiB  # library buffers a scan's phases add (MKL packing, thread pools): measured, GPT-2 size
+_RUNTIME = 32 * _MiB  # what the phases add besides their tensors (library buffers, heap slack): measured, GPT-2 size
 _baseline: list[int] = []
 
 
@@ -259,7 +259,7 @@ def _memory(w: Weights, options, side, pairs, rows: int, path: str) -> dict[str,
     if side.part != "full":  # unembedding directions [V, d] and unembed queries [H, V, dh]
         extra = 8 * V * d + H * f64
     unit = max(len(v) for v in responders.values())
-    working = 2 * f64 + unit * min(rows, V) * dh * 8 + (1 << 15) * dh * 8 * 3  # evaluated rows, kernel chunks
+    working = unit * min(rows, V) * dh * 8 + V * dh * (8 + 4)  # evaluated rows; one packing's temporaries
     out["pairs"] = base + slim + table + n_w * f64 + n_r * (f64 + V * packed) + extra + working + _RUNTIME
     profiled: dict[int, set] = {}
     for u, r in pairs:
@@ -268,13 +268,14 @@ def _memory(w: Weights, options, side, pairs, rows: int, path: str) -> dict[str,
     head = 0
     last = max(profiled)
     for l, hs in profiled.items():
-        held = len(hs) * f64 + 8 * d * V_out + 2 * 8 * V_out * dh + V_out * dh * 4 + (1 << 15) * dh * 8 * 3
+        held = len(hs) * f64 + 8 * d * V_out + 2 * 8 * V_out * dh  # the float64 unembedding while a readout is built
         build = table + len(hs) * f64 + 4 * 1024 * d * 8
         head = max(head, build, held + (0 if l == last else table))
     out["head profiles"] = base + slim + head + _RUNTIME
     per = max(1, 64 // H)
-    out["model-space scores"] = base + slim + max(8 * (1 + 2 * min(per, L)) * H * d * dh * 8,
-                                                  4 * 200 * d * dh * 8) + _RUNTIME
+    group = min(per, L) * H * d * dh * 8  # one [H, d, dh] float64 per later layer of a group
+    out["model-space scores"] = base + slim + max(8 * (H * d * dh * 8 + group) + 6 * group,  # reductions, concatenated
+                                                  4 * 200 * d * dh * 8) + _RUNTIME  # the Gaussian baseline
     return out
 
 
