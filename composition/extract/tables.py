@@ -163,7 +163,20 @@ def release_table_inputs(w: Weights) -> Weights:
     W_E = w.W_E
     if w.readout == "tied" and tuple(w.W_U.shape) == tuple(W_E.shape[::-1]) and torch.equal(w.W_U.T, W_E):
         W_E = w.W_U.T  # [V, d] view: the same values, no second copy
-    return dataclasses.replace(w, W_E=W_E, layers=_layers_without_mlp(w.layers))
+    fields = {f.name: getattr(w, f.name) for f in dataclasses.fields(Weights)}
+    return _Released(**dict(fields, W_E=W_E, layers=_layers_without_mlp(w.layers)),
+                     full_tensor_fingerprint=w.tensor_fingerprint())
+
+
+@dataclass(frozen=True)
+class _Released(Weights):
+    """Weights after :func:`release_table_inputs`: their fingerprint is that of the full weights
+    (computed before the release), so a resumed scan recognises its checkpoint."""
+
+    full_tensor_fingerprint: str = ""
+
+    def tensor_fingerprint(self) -> str:
+        return self.full_tensor_fingerprint
 
 
 def table_inputs(w: Weights) -> Weights:

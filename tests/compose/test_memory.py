@@ -28,7 +28,7 @@ def model(tmp_path_factory):
 
 def test_released_weights_keep_every_factor_and_setting(model):
     """After release_table_inputs the MLP tensors are empty, the tied embedding is a view of the
-    unembedding (no second copy), the settings are the same, and the writer values, keys, head
+    unembedding (no second copy), the settings and the fingerprint are the same, and the writer values, keys, head
     profiles and model-space scores are bit for bit those of the full weights.
     Common practice, no source"""
     path, _, _, w, T = model
@@ -37,6 +37,7 @@ def test_released_weights_keep_every_factor_and_setting(model):
                for i in range(slim.n_layers))
     assert slim.W_E.data_ptr() == slim.W_U.data_ptr() and torch.equal(slim.W_E, w.W_E)
     assert slim.settings() == w.settings() and slim.vocab_size == w.vocab_size and slim.d_model == w.d_model
+    assert slim.fingerprint() == w.fingerprint()  # a resumed scan checks it against the file
     for layer in range(w.n_layers):
         assert torch.equal(fx.writer_values(slim, T, layer), fx.writer_values(w, T, layer))
         assert torch.equal(fx.responder_keys(slim, T, layer), fx.responder_keys(w, T, layer))
