@@ -271,8 +271,12 @@ def main() -> None:
         print(f"\nscan of writer 0.0 x every head of layer 1 (12 pairs, --rows 4096) in a fresh process:")
         print(f"  wall time {got['seconds']:.1f} s, plan said {p.total_seconds:.1f} s "
               f"(ratio {p.total_seconds / got['seconds']:.2f})")
-        print(f"  peak memory {got['peak_bytes'] / 2**30:.2f} GiB (target <= 1.5), plan said "
-              f"{p.peak_bytes / 2**30:.2f} GiB")
+        ratio = p.peak_bytes / got["peak_bytes"]
+        print(f"  peak RSS of the scan (ru_maxrss of the fresh process): {got['peak_bytes'] / 2**30:.2f} GiB "
+              f"(target <= 1.5 GiB)")
+        print(f"  plan's estimate: {p.peak_bytes / 2**30:.2f} GiB; estimate / measured = {ratio:.2f} "
+              f"(target 0.75-1.25)")
+        print("  plan's phases (GiB): " + ", ".join(f"{k} {v / 2**30:.2f}" for k, v in p.memory.items()))
 
 
 if __name__ == "__main__":

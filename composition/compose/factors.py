@@ -24,7 +24,7 @@ from ..extract.tables import apply_norm, norm_linear_part
 from ..extract.weights import Norm, Weights
 
 _IDENTITY = Norm("identity", None, None)
-_BLOCK = 4096
+_BLOCK = 1024  # rows per block: the norm's temporaries are [1024, d] float64 (rows are independent)
 
 
 def input_norm(w: Weights, layer: int) -> Norm:
@@ -53,25 +53,33 @@ def residual_path(w: Weights, writer_layer: int, responder_layer: int) -> torch.
     return path
 
 
-def _normed_projection(w: Weights, table: torch.Tensor, layer: int, which: str) -> torch.Tensor:
-    """``N_l(T) W`` for every head, W one of ``W_V``/``W_K``/``W_Q``. # table [V, d] -> [H, V, dh]"""
+def _normed_projection(w: Weights, table: torch.Tensor, layer: int, which: str, heads=None) -> torch.Tensor:
+    """``N_l(T) W`` for every head (or the heads listed in ``heads``), W one of ``W_V``/``W_K``/``W_Q``.
+
+    # table [V, d] -> [H, V, dh] (or [len(heads), V, dh])
+    Each block of rows is projected on every head at once and only the listed heads are kept, so
+    a head's values are the same bits whichever heads are asked for (a product over fewer heads
+    would round differently); the memory held is that of the listed heads.
+    """
     W = getattr(w.layers[layer].attn, which).double()  # [H, d, dh]
+    keep = None if heads is None else [int(h) for h in heads]
     norm = input_norm(w, layer)
-    out = torch.empty(W.shape[0], table.shape[0], W.shape[2], dtype=torch.float64)
+    out = torch.empty(W.shape[0] if keep is None else len(keep), table.shape[0], W.shape[2], dtype=torch.float64)
     for start in range(0, table.shape[0], _BLOCK):
         x = apply_norm(norm, table[start:start + _BLOCK])  # [B, d]
-        out[:, start:start + x.shape[0]] = torch.einsum("bd,hde->hbe", x, W)
+        y = torch.einsum("bd,hde->hbe", x, W)  # [H, B, dh]
+        out[:, start:start + x.shape[0]] = y if keep is None else y[keep]
     return out
 
 
-def writer_values(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
-    """``A_U = N_lU(T) W_V^U`` for every head of ``layer``. # table [V, d] -> [H, V, dh]"""
-    return _normed_projection(w, table, layer, "W_V")
+def writer_values(w: Weights, table: torch.Tensor, layer: int, heads=None) -> torch.Tensor:
+    """``A_U = N_lU(T) W_V^U`` for every head of ``layer`` (or of ``heads``). # table [V, d] -> [H, V, dh]"""
+    return _normed_projection(w, table, layer, "W_V", heads)
 
 
-def responder_keys(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
-    """``K_R = N_lR(T) W_K^R`` for every head of ``layer``, key bias left out. # -> [H, V, dh]"""
-    return _normed_projection(w, table, layer, "W_K")
+def responder_keys(w: Weights, table: torch.Tensor, layer: int, heads=None) -> torch.Tensor:
+    """``K_R = N_lR(T) W_K^R`` for every head of ``layer`` (or of ``heads``), key bias left out. # -> [H, V, dh]"""
+    return _normed_projection(w, table, layer, "W_K", heads)
 
 
 def query_middles(w: Weights, writer_layer: int, writer_head: int, responder_layer: int,
@@ -151,10 +159,16 @@ def _writer_read(w: Weights, writer_layer: int, writer_head: int, responder_laye
     return out
 
 
-def responder_queries(w: Weights, table: torch.Tensor, layer: int) -> torch.Tensor:
-    """Key side: the full token-table query ``N_lR(T) W_Q^R + b_Q^R`` of every head. # table [V, d] -> [H, V, dh]"""
+def responder_queries(w: Weights, table: torch.Tensor, layer: int, heads=None) -> torch.Tensor:
+    """Key side: the full token-table query ``N_lR(T) W_Q^R + b_Q^R`` of every head (or of ``heads``).
+
+    # table [V, d] -> [H, V, dh]"""
     b_Q = w.layers[layer].attn.b_Q.double()  # [H, dh]
-    return _normed_projection(w, table, layer, "W_Q") + b_Q[:, None, :]  # [H, V, dh]
+    if heads is not None:
+        b_Q = b_Q[[int(h) for h in heads]]
+    queries = _normed_projection(w, table, layer, "W_Q", heads)  # [H, V, dh]
+    queries += b_Q[:, None, :]  # in place: the same sums, no second [H, V, dh]
+    return queries
 
 
 def key_middles(w: Weights, writer_layer: int, writer_head: int, responder_layer: int,

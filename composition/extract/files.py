@@ -250,16 +250,21 @@ class _Safetensors(_File):
         self.path = path
         _safetensors_names_unique(path)
         try:
-            self._handle = safe_open(str(path), framework="pt")
-            self._shapes = {n: tuple(self._handle.get_slice(n).get_shape()) for n in self._handle.keys()}
+            with safe_open(str(path), framework="pt") as handle:
+                self._shapes = {n: tuple(handle.get_slice(n).get_shape()) for n in handle.keys()}
         except Exception as exc:  # noqa: BLE001 - the library's errors vary by fault
             raise CompositionError(
                 f"{path} is not a readable safetensors file ({_first_line(exc)}); it may be truncated or corrupt."
             ) from None
 
     def get(self, name: str) -> torch.Tensor:
+        """An owned copy: the library's tensors view a memory map of the whole file, whose pages
+        count in the process's resident memory for as long as any view lives (docs/performance.md)."""
+        from safetensors import safe_open
+
         try:
-            return self._handle.get_tensor(name)
+            with safe_open(str(self.path), framework="pt") as handle:
+                return handle.get_tensor(name).clone()
         except Exception as exc:  # noqa: BLE001
             raise self._unreadable(name, exc) from None
 

@@ -2,24 +2,32 @@
 
 A token table ``T`` ``[V, d]`` stands for what the residual stream holds at a position
 whose token is ``t``, before heads move information between positions. All arithmetic
-here is float64; rows are processed in blocks so the MLP's hidden width never costs
-``V x m`` memory at once.
+here is float64; rows are processed in blocks of ``_BLOCK`` rows so the MLP's hidden width
+costs ``_BLOCK x m`` (and a few temporaries of it), never ``V x m``. Each row of a block is
+computed by the same operations whatever the block size (row-wise norms, matrix products
+split along rows only), so the block size changes memory, not a number.
+
+Once the table is built, the embedding and the MLP weights are no longer read by a scan:
+:func:`release_table_inputs` gives the weights without them (docs/performance.md, memory).
 
 GELU: Hendrycks & Gimpel 2016, "Gaussian Error Linear Units (GELUs)".
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
 import torch
 
 from ..errors import CompositionError
-from .weights import MLP, Attention, Norm, Weights
+from ..memory import return_freed
+from ._build import LazyLayers
+from .weights import MLP, Attention, Layer, Norm, Weights
 
 TABLES = ("embed", "mlp0", "attn0-mlp0")
-_BLOCK = 4096
+_BLOCK = 1024  # rows per block: hidden activations [1024, m] float64 (GPT-2 small: 24 MiB each)
 
 
 @dataclass(frozen=True)
@@ -119,7 +127,7 @@ def token_table(w: Weights, options: TableOptions = TableOptions()) -> torch.Ten
     p = position_row(w, options.position)
     V = w.vocab_size
     out = torch.empty(V, w.d_model, dtype=torch.float64)
-    layer0 = w.layers[0]
+    layer0 = _as_float64(w.layers[0]) if options.kind != "embed" else None  # converted once, not per block
     for start in range(0, V, _BLOCK):
         x = w.W_E[start:start + _BLOCK].double()  # [B, d]
         if p is not None:
@@ -132,6 +140,73 @@ def token_table(w: Weights, options: TableOptions = TableOptions()) -> torch.Ten
             x = _block0(w, layer0, x, with_attention=options.kind == "attn0-mlp0")
         out[start:start + x.shape[0]] = x
     return out
+
+
+def _as_float64(layer: Layer) -> Layer:
+    """A layer with its attention and MLP tensors in float64 (the values the blocks would convert)."""
+    def conv(part):
+        return dataclasses.replace(part, **{f.name: getattr(part, f.name).double() for f in dataclasses.fields(part)
+                                            if isinstance(getattr(part, f.name), torch.Tensor)})
+    return dataclasses.replace(layer, attn=conv(layer.attn), mlp=conv(layer.mlp))
+
+
+def release_table_inputs(w: Weights) -> Weights:
+    """The weights without what only the token table reads: the MLP weights of every layer and,
+    for a tied readout, the separate embedding copy (``W_E`` becomes a view of ``W_U``).
+
+    Shapes, activations, norms, the attention weights and ``W_U`` stay, so every factor, the
+    head profiles, the model-space scores, :meth:`Weights.settings` and the sizes are unchanged;
+    the MLP tensors are empty (``[0]``) and a token table or a fingerprint cannot be computed
+    from the result: compute them first. Layers read lazily stay lazy: a layer loaded later is
+    released on loading. # GPT-2 small: 216 MiB of MLP weights, 147 MiB of embedding
+    """
+    W_E = w.W_E
+    if w.readout == "tied" and tuple(w.W_U.shape) == tuple(W_E.shape[::-1]) and torch.equal(w.W_U.T, W_E):
+        W_E = w.W_U.T  # [V, d] view: the same values, no second copy
+    fields = {f.name: getattr(w, f.name) for f in dataclasses.fields(Weights)}
+    return _Released(**dict(fields, W_E=W_E, layers=_layers_without_mlp(w.layers)),
+                     full_tensor_fingerprint=w.tensor_fingerprint())
+
+
+@dataclass(frozen=True)
+class _Released(Weights):
+    """Weights after :func:`release_table_inputs`: their fingerprint is that of the full weights
+    (computed before the release), so a resumed scan recognises its checkpoint."""
+
+    full_tensor_fingerprint: str = ""
+
+    def tensor_fingerprint(self) -> str:
+        return self.full_tensor_fingerprint
+
+
+def table_inputs(w: Weights) -> Weights:
+    """The part of the weights the token table reads: the embedding, positions and layer 0
+    (a one-layer view of ``w``; the other layers are not held for it)."""
+    return dataclasses.replace(w, layers=(w.layers[0],))
+
+
+_EMPTY = torch.empty(0)
+
+
+def _without_mlp(layer: Layer) -> Layer:
+    mlp = layer.mlp
+    gate = None if mlp.W_gate is None else _EMPTY
+    return dataclasses.replace(layer, mlp=MLP(_EMPTY, _EMPTY, _EMPTY, _EMPTY, mlp.activation, gate,
+                                              None if mlp.b_gate is None else _EMPTY))
+
+
+def _layers_without_mlp(layers):
+    """Every layer with its MLP released. Layers a reader loads lazily (``LazyLayers``) stay lazy:
+    they are read again through the reader's loader and released on loading, so the reader's
+    cache of full layers is dropped with the old weights."""
+    load = getattr(layers, "_load", None)
+    if isinstance(layers, LazyLayers) and load is not None:
+        def released(i: int) -> Layer:
+            layer = _without_mlp(load(i))
+            return_freed()  # the MLP tensors just read (each under the C library's mapping threshold)
+            return layer
+        return LazyLayers(len(layers), released)
+    return tuple(_without_mlp(layers[i]) for i in range(len(layers)))
 
 
 def _block0(w: Weights, layer, x: torch.Tensor, with_attention: bool) -> torch.Tensor:

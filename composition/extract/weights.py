@@ -122,7 +122,7 @@ class Weights:
         for name, t in _named_tensors(self):
             t = t.detach().contiguous().cpu()
             h.update(f"{name}|{tuple(t.shape)}|{t.dtype}".encode())
-            h.update(t.view(torch.uint8).numpy().tobytes() if t.numel() else b"")
+            h.update(t.view(torch.uint8).numpy() if t.numel() else b"")  # the bytes, read in place (no copy)
         if self.rotary is not None:
             h.update(f"rotary|{self.rotary.dims}|{self.rotary.style}".encode())
         return h.hexdigest()

@@ -46,6 +46,7 @@ import torch
 
 from ..errors import CompositionError
 from ..compose.factors import input_norm, writer_values
+from ..memory import return_freed
 from ..score.ranks import diagonal_midranks
 from ..store import schema
 from ..store.atomic import atomic_write, check_target, special_kind
@@ -134,9 +135,15 @@ def profile_layer(w: Weights, table: torch.Tensor, layer: int, heads, ks, block_
     """
     ks = tuple(int(k) for k in ks)
     fields = schema.unit_arrays("heads", len(heads), len(ks), HIST_BINS)
-    A, B = ov_factors(w, table, layer)  # [H, V, dh], [H, V_out, dh]
+    # memory: the profiled heads' values and one head's readout at a time (the same bits as ov_factors)
+    A = writer_values(w, table, layer, heads)  # [n, V, dh]
+    del table  # a caller that handed over its last reference frees the table here
+    lin_f = norm_linear_part(w.final_norm, w.d_model)  # [d, d]
     for j, h in enumerate(heads):
-        put_ov_profile(fields, j, A[h], B[h], ks, block_rows)
+        W_O = w.layers[layer].attn.W_O[h:h + 1].double()  # [1, dh, d]
+        B = torch.einsum("hed,df,fv->hev", W_O, lin_f, w.W_U.double())[0].T.contiguous()  # [V_out, dh]
+        return_freed()  # the float64 unembedding is gone before the ranks run
+        put_ov_profile(fields, j, A[j], B, ks, block_rows)
     fields.pop("label")
     fields.pop("q_value")
     index = np.array([[layer, h] for h in heads], dtype=np.int64).reshape(-1, 2)
@@ -332,13 +339,40 @@ def composition_baseline(d: int, dh: int, draws: int = BASELINE_DRAWS, seed: int
     def gauss():
         return torch.from_numpy(rng.standard_normal((draws, d, dh)))  # [n, d, dh] float64
 
-    wp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
-    rp = _prepare(HeadFactors(gauss(), gauss(), gauss(), gauss()), with_bases=False)
-    den = {"q": rp.qk_norm2, "k": rp.qk_norm2, "v": rp.ov_norm2}
+    # The writer's and the responder's factors are drawn in this order: ov_in, ov_out, q, k (as
+    # HeadFactors); each is reduced as soon as what it pairs with is drawn (the arithmetic of
+    # _prepare, step by step), so at most four [n, d, dh] arrays are held at once.
+    G_in = _gram(gauss())  # writer: ov_in
+    ov_out = gauss()
+    G_out = _gram(ov_out)
+    writer_z = ov_out @ _sqrt_psd(G_in)  # [n, d, dh]
+    ov_norm2 = (G_in * G_out).sum((-1, -2))  # [n]
+    del ov_out
+    gauss(), gauss()  # the writer's q and k: drawn (they fix the stream), not used by the baseline
+
+    def paired(z):  # [n, d, dh] -> [n]
+        return (writer_z.transpose(1, 2) @ z).pow(2).sum((-1, -2))
+
+    r_in = gauss()  # responder: ov_in, ov_out
+    G_in_r = _gram(r_in)
+    r_out = gauss()
+    G_out_r = _gram(r_out)
+    del r_out
+    num2 = {"v": paired(r_in @ _sqrt_psd(G_out_r))}
+    del r_in
+    r_q = gauss()  # responder: q, k
+    G_q = _gram(r_q)
+    r_k = gauss()
+    G_k = _gram(r_k)
+    num2["q"] = paired(r_q @ _sqrt_psd(G_k))
+    del r_q
+    num2["k"] = paired(r_k @ _sqrt_psd(G_q))
+    del r_k
+    den = {"q": (G_q * G_k).sum((-1, -2)), "v": (G_in_r * G_out_r).sum((-1, -2))}
+    den["k"] = den["q"]
     out = {}
     for kind in KINDS:
-        num2 = (wp.writer_z.transpose(1, 2) @ rp.responder_z[kind]).pow(2).sum((-1, -2))  # [n] paired
-        s = _ratio(num2, wp.ov_norm2 * den[kind])
+        s = _ratio(num2[kind], ov_norm2 * den[kind])
         out[kind] = (float(s.mean()), float(s.std()))
     return out
 
@@ -359,16 +393,27 @@ def projection_kernel(Q1: torch.Tensor, Q2: torch.Tensor) -> float:
 
 
 class ModelSpace:
-    """The per-layer reductions the model-space units need, built once per layer and kept."""
+    """The per-layer reductions the model-space units need, built when a unit asks for them.
+
+    Only the last writer layer's is kept: a unit holds its own layer and one group of later
+    layers (GPT-2 small: 0.2 GB) instead of every layer (0.45 GB); a layer's reduction is
+    recomputed for each unit that reads it (a few tens of milliseconds, the same bits)."""
 
     def __init__(self, w: Weights):
         self.w = w
-        self._prepared: dict[int, _Prepared] = {}
+        self._kept: tuple[int, _Prepared] | None = None
 
     def prepared(self, layer: int) -> _Prepared:
-        if layer not in self._prepared:
-            self._prepared[layer] = _prepare(layer_factors(self.w, layer))
-        return self._prepared[layer]
+        if self._kept is not None and self._kept[0] == layer:
+            return self._kept[1]
+        return _prepare(layer_factors(self.w, layer))
+
+    def writer(self, layer: int) -> _Prepared:
+        """The reduction of a writer layer, kept until another writer layer is asked for."""
+        if self._kept is None or self._kept[0] != layer:
+            self._kept = None
+            self._kept = (layer, _prepare(layer_factors(self.w, layer)))
+        return self._kept[1]
 
 
 def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, np.ndarray]]:
@@ -384,7 +429,7 @@ def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, 
     for name, decl in schema.datasets("model_space").items():
         shape = decl.shape(L, H, 0, 0)[1:]
         out[name] = np.full((1,) + shape, decl.fill, dtype=decl.dtype)
-    mine = space.prepared(lU)
+    mine = space.writer(lU)
     out["write_dim"][0] = mine.bases["out"][1]  # [H] rank of W_O
     for kind in KINDS:
         out[f"read_dim_{kind}"][0] = mine.bases[kind][1]
@@ -394,14 +439,18 @@ def model_space_unit(space: ModelSpace, lU: int) -> tuple[np.ndarray, dict[str, 
             torch.cat([p.ov_norm2 for p in later]), torch.cat([p.qk_norm2 for p in later]), None,
             {kind: torch.cat([p.responder_z[kind] for p in later]) for kind in KINDS},
             {kind: (torch.cat([p.bases[kind][0] for p in later]), None) for kind in KINDS})
+        read_dims = {kind: np.stack([p.bases[kind][1] for p in later]) for kind in KINDS}  # [n, H] each
+        del later  # the group's reductions, now concatenated
         scores, kernels = _pair_scores(mine, responders)  # {kind: [H, len(group) H]}
         sl = slice(group[0], group[-1] + 1)
         for kind in KINDS:
             out[f"{kind}_composition"][0, :, sl, :] = scores[kind].numpy().reshape(H, len(group), H)
             out[f"projection_kernel_{kind}"][0, :, sl, :] = kernels[kind].numpy().reshape(H, len(group), H)
-            read = np.stack([p.bases[kind][1] for p in later])  # [n, H]
+            read = read_dims[kind]  # [n, H]
             dims = np.einsum("a,lb->alb", out["write_dim"][0], read)  # [H, n, H]
             out[f"kernel_random_mean_{kind}"][0, :, sl, :] = dims / d
+        del responders, scores, kernels  # before the next group's reductions are built
+        return_freed()
     out["done"][0] = True
     return np.array([[lU]], dtype=np.int64), out
 

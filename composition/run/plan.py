@@ -12,9 +12,13 @@ factors of the model's vocabulary and head width.
 A finished scan also profiles the OV circuit of every head it scanned (``composition.interpret.heads``):
 one full-vocabulary diagonal rank per head, counted at the same kernel rate.
 
-Peak memory: the process after loading the checkpoint (measured), plus the token table,
-one layer of writer values and of responder keys (float64), one layer of packed keys and
-one pair's working set. Sequential scans (``--until-ci``) are estimated for pairs without
+Peak memory: a model of what the driver holds in each phase (``_memory``; docs/performance.md),
+the largest of: loading (every canonical tensor), the token table (the table, the embedding
+and layer 0), the pairs (the weights without MLPs, the table, the float64 per-layer factors of
+the scanned heads only, the packed right factors and one unit's working set), the head
+profiles (the profiled heads' values, the float64 unembedding and one head's readout, the
+table until its last use) and the model-space scores; plus the resident memory of a fresh
+process that has imported the tool (measured once, in a child process of the same kind). Sequential scans (``--until-ci``) are estimated for pairs without
 effect (mean percentile 1/2, null shares); pairs with a large effect stop at least as early,
 pairs near a decision boundary may read up to every row (the maximum is printed too).
 """
@@ -22,9 +26,12 @@ pairs near a decision boundary may read up to every row (the maximum is printed 
 from __future__ import annotations
 
 import dataclasses
-import resource
+import os
+import subprocess
+import sys
 import time
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import torch
@@ -60,6 +67,7 @@ class Plan:
     side: str
     seconds: dict  # stage -> estimated seconds
     peak_bytes: int
+    memory: dict = dataclasses.field(default_factory=dict)  # phase -> estimated peak bytes (baseline included)
 
     @property
     def total_seconds(self) -> float:
@@ -79,7 +87,9 @@ class Plan:
             f"ranks {_duration(s['ranks'])}, per-layer factors {_duration(s['factors'] + s['table'])}, "
             f"per-pair factors {_duration(s['per_pair'])} ({_duration(s['per_pair'] / max(1, self.pairs))} a pair), "
             f"head profiles {_duration(s['heads'])}, load and write {_duration(s['load'] + s['write'])}",
-            f"peak memory        {self.peak_bytes / 2**30:.2f} GiB",
+            f"peak memory        {self.peak_bytes / 2**30:.2f} GiB"
+            + (f" (during the {max(self.memory, key=self.memory.get)}; a fresh process alone: "
+               f"{self.memory.get('baseline', 0) / 2**30:.2f} GiB)" if self.memory else ""),
         ]
         return "\n".join(lines)
 
@@ -94,10 +104,6 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-def _rss_bytes() -> int:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
-
-
 def _timed(fn, *args):
     t = time.perf_counter()
     out = fn(*args)
@@ -110,11 +116,9 @@ def _best_of(n: int, fn, *args) -> float:
 
 
 def _weights_bytes(w: Weights) -> int:
-    total = 0
-    for f in dataclasses.fields(w):
-        v = getattr(w, f.name)
-        total += _tensor_bytes(v)
-    return total
+    """Bytes of every canonical tensor, each layer included (layers read lazily are read here)."""
+    total = sum(_tensor_bytes(getattr(w, f.name)) for f in dataclasses.fields(w) if f.name != "layers")
+    return total + sum(_tensor_bytes(w.layers[i]) for i in range(w.n_layers))
 
 
 def _tensor_bytes(v) -> int:
@@ -131,7 +135,6 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     """Estimate the wall time and peak memory of ``run_scan(checkpoint, ..., options)``."""
     options.validate()
     w, t_load = (checkpoint, 0.0) if isinstance(checkpoint, Weights) else _timed(load_weights, checkpoint, options.family, options.layout)
-    rss_loaded = _rss_bytes()
     pairs = scan_pairs(w, options)
     units = work_units(pairs)
     V, H, dh, d = w.vocab_size, w.n_heads, w.d_head, w.d_model
@@ -191,15 +194,89 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
         "heads": len(profiled) * float(V) * V / rate + t_table * scale
         + len({h[0] for h in profiled}) * t_values * scale,
     }
-    f64 = 8 * V
     path = resolve_path(options.precision, options.device, options.engine)
-    per_pair = V * dh * 8 + rows * dh * (8 + 8 + 4 + 4) + (1 << 15) * dh * 8 * 3
-    prepared = H * V * (3 * dh * 2 if path.endswith("bf16x3") else dh * 4)  # packed right factors of a layer
-    table_work = 4096 * (4 * d) * 8 * 3
-    peak = rss_loaded + f64 * d + 2 * H * f64 * dh + max(prepared + per_pair, table_work)
+    memory = _memory(w, options, side, pairs, rows, path)
+    peak = max(memory.values())
     engine = path
     return Plan(str(getattr(w, "source", checkpoint)), V, dh, n_pairs, len(units), rows, rows_most, looks_used,
-                entries, rate, engine, options.precision, side.title, seconds, int(peak))
+                entries, rate, engine, options.precision, side.title, seconds, int(peak), memory)
+
+
+_MiB = 2**20
+_RUNTIME = 32 * _MiB  # what the phases add besides their tensors (library buffers, heap slack): measured, GPT-2 size
+_baseline: list[int] = []
+
+
+def baseline_bytes() -> int:
+    """Resident memory of a fresh process that has imported the scan driver and run one matrix
+    product (Python, torch, NumPy, h5py, the libraries' thread pools), measured once in a child."""
+    if not _baseline:
+        code = ("import torch, composition.run.scan, composition.score.ranks\n"
+                "torch.ones(64, 64) @ torch.ones(64, 64)\n"
+                "from composition.memory import resident_bytes\nprint(resident_bytes())")
+        env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(Path(__file__).resolve().parents[2]),
+                                                                          os.environ.get("PYTHONPATH")])))
+        try:
+            out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120,
+                                 check=True).stdout
+            _baseline.append(int(out.strip().splitlines()[-1]))
+        except (OSError, subprocess.SubprocessError, ValueError, IndexError):
+            _baseline.append(300 * _MiB)  # what it is on Linux with torch 2.x CPU
+    return _baseline[0]
+
+
+def _memory(w: Weights, options, side, pairs, rows: int, path: str) -> dict[str, int]:
+    """Estimated peak resident bytes of each phase of ``run_scan`` (what the driver holds then).
+
+    # GPT-2 small, writer 0.0 x layer 1: table 294 MiB, one layer of keys 294 MiB, packed 147 MiB
+    """
+    V, H, dh, d, L = w.vocab_size, w.n_heads, w.d_head, w.d_model, w.n_layers
+    V_out = w.W_U.shape[1]
+    f64 = 8 * V * dh  # one head's float64 [V, dh] factor
+    base = baseline_bytes()
+    every = _weights_bytes(w)
+    mlp = [_tensor_bytes(w.layers[i].mlp) for i in range(L)]
+    tied = w.readout == "tied"
+    slim = every - sum(mlp) - (_tensor_bytes(w.W_E) if tied else 0)  # after release_table_inputs
+    table = 8 * V * d
+    m = w.layers[0].mlp.W_in.shape[1]
+    layer0 = _tensor_bytes(w.layers[0].attn) + mlp[0]
+    from ..extract.tables import _BLOCK as table_block
+    out = {"baseline": base,
+           "loading": base + every + max(_tensor_bytes(w.W_E), 3 * d * d * 4),
+           "token table": base + slim + _tensor_bytes(w.W_E) + 3 * layer0 + table + 6 * table_block * m * 8 + _RUNTIME}
+    writers: dict[int, set] = {}
+    responders: dict[int, set] = {}
+    for (lU, hU), (lR, hR) in pairs:
+        writers.setdefault(lU, set()).add(hU)
+        responders.setdefault(lR, set()).add(hR)
+    n_w = max(len(v) for v in writers.values())
+    n_r = max(len(v) for v in responders.values())
+    if side.fixed_name not in ("keys", "queries"):  # readouts: every head of the layer
+        n_r = H
+    packed = 3 * dh * 2 if path.endswith("bf16x3") else dh * 4
+    extra = 0
+    if side.part != "full":  # unembedding directions [V, d] and unembed queries [H, V, dh]
+        extra = 8 * V * d + H * f64
+    unit = max(len(v) for v in responders.values())
+    working = unit * min(rows, V) * dh * 8 + V * dh * (8 + 4)  # evaluated rows; one packing's temporaries
+    out["pairs"] = base + slim + table + n_w * f64 + n_r * (f64 + V * packed) + extra + working + _RUNTIME
+    profiled: dict[int, set] = {}
+    for u, r in pairs:
+        for l, h in (u, r):
+            profiled.setdefault(l, set()).add(h)
+    head = 0
+    last = max(profiled)
+    for l, hs in profiled.items():
+        held = len(hs) * f64 + 8 * d * V_out + 2 * 8 * V_out * dh  # the float64 unembedding while a readout is built
+        build = table + len(hs) * f64 + 4 * 1024 * d * 8
+        head = max(head, build, held + (0 if l == last else table))
+    out["head profiles"] = base + slim + head + _RUNTIME
+    per = max(1, 64 // H)
+    group = min(per, L) * H * d * dh * 8  # one [H, d, dh] float64 per later layer of a group
+    out["model-space scores"] = base + slim + max(8 * (H * d * dh * 8 + group) + 6 * group,  # reductions, concatenated
+                                                  4 * 200 * d * dh * 8) + _RUNTIME  # the Gaussian baseline
+    return out
 
 
 def _factor_builds(units) -> tuple[int, int]:

@@ -29,7 +29,7 @@ from .._version import __version__
 from ..errors import CompositionError
 from ..extract import load_weights
 from ..extract.rotary import offsets_rotation
-from ..extract.tables import TableOptions, token_table
+from ..extract.tables import TableOptions, release_table_inputs, table_inputs, token_table
 from ..extract.weights import Weights
 from ..compose.sides import SideFactors
 from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
@@ -43,6 +43,7 @@ from ..store.atomic import check_target, remove_quietly, special_kind
 from ..store.scanfile import (CAUTION, FORMAT_NAME, FORMAT_VERSION, PAIR_DATASETS, STATUS_COMPLETE, Scan, ScanStore,
                               ScanWriteError, empty_pairs, journal_path, load_scan, read_scan_groups,
                               settings_change)
+from ..memory import return_freed
 from .interrupts import Guard, Interrupt, ScanInterrupted, signal_name
 from .progress import ScanProgress
 from .units import (GroupHeadUnit, GroupUnit, ReferenceUnit, WorkUnit, compute_unit, scan_pairs,  # noqa: F401
@@ -91,10 +92,13 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     ks = tuple(int(k) for k in options.k)
     _check_model_options(w, options)
     extra = beyond_units(w, options, pairs)
-    table = _checked_table(w, options)  # [V, d]: every model-dependent fault is found before the file exists
     units = work_units(pairs) + extra + final_units(w, pairs) + [GroupHeadUnit(g, spec) for g, spec
                                                                  in enumerate(options.writer_groups)]
-    attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))
+    attrs = dict(_attrs(w, options, ks, len(pairs)), units_total=len(units))  # the fingerprint reads every tensor
+    w, table_w = release_table_inputs(w), table_inputs(w)  # from here only the table reads the MLP weights
+    tables = [_checked_table(table_w, options)]  # [V, d]: every model fault is found before the file exists
+    del table_w  # _complete releases the table after its last use
+    return_freed()
     run = _Run(out, units, len(pairs), int(attrs["keys_per_row"]), options, progress)
     groups = {"pairs": empty_pairs(w.n_layers, w.n_heads, len(ks), HIST_BINS),
               "heads": schema.empty("heads", w.n_layers, w.n_heads, len(ks), HIST_BINS),
@@ -122,7 +126,7 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
                 store = _open_store(out, attrs, groups, overwrite, w, start_attrs)
             with store:
                 if not store.complete:
-                    _complete(store, run, guard, w, attrs, options, table,
+                    _complete(store, run, guard, w, attrs, options, tables,
                               dict(checkpoint=checkpoint, cluster=cluster, workers=workers,
                                    worker_checkpoint=worker_checkpoint))
         except Interrupt as stop:
@@ -181,7 +185,7 @@ def _checked_table(w: Weights, options: ScanOptions):
     import torch
 
     T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
-    if not torch.isfinite(T).all():
+    if not all(bool(torch.isfinite(T[s:s + 4096]).all()) for s in range(0, T.shape[0], 4096)):  # no [V, d] temporary
         raise CompositionError(
             f"the token table of {w.source} ({options.table}) is not finite: check the config's norm epsilon "
             "(layer_norm_epsilon / layer_norm_eps / rms_norm_eps) and activation, and the weights' sizes.")
@@ -197,10 +201,11 @@ def _clean_if_nothing_committed(out: Path, run: "_Run") -> None:
 
 
 def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: dict, options: ScanOptions,
-              table, execution: dict) -> None:
+              tables: list, execution: dict) -> None:
     """Compute the missing units (pairs, then writer groups and references, then head profiles,
     model-space scores and the groups' OV profiles), committing each as it comes, then label all
-    pairs and heads and finish: one transaction. Only pair units go to a cluster; the rest run here."""
+    pairs and heads and finish: one transaction. Only pair units go to a cluster; the rest run here.
+    ``tables`` holds the token table's only reference, so the last head profile can release it."""
     run.begin(store)
 
     def commit(i: int, results) -> None:
@@ -211,24 +216,35 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
 
     todo = run.todo()
     pair_todo = [(i, u) for i, u in todo if isinstance(u, WorkUnit)]
-    final_todo = [(i, u) for i, u in todo if not isinstance(u, WorkUnit)]  # groups, references, heads, space
-    factors = SideFactors(w, table, offsets_rotation(w, options.rotary_offsets))
+    beyond_todo = [(i, u) for i, u in todo if isinstance(u, (GroupUnit, GroupHeadUnit, ReferenceUnit))]
+    final_todo = [(i, u) for i, u in todo if isinstance(u, (HeadUnit, SpaceUnit))]
+    rotation = offsets_rotation(w, options.rotary_offsets)
     if pair_todo and (execution["cluster"] is not None or execution["workers"] is not None):
         from .cluster import run_units
 
         path = execution["worker_checkpoint"] or Path(execution["checkpoint"]).resolve()
         run_units(pair_todo, commit, checkpoint=str(path), fingerprint=attrs["weights_fingerprint"], options=options,
                   address=execution["cluster"], workers=execution["workers"])
-    else:
+    elif pair_todo:
+        scanned = {u.writer for _, u in pair_todo} | {(u.responder_layer, h) for _, u in pair_todo for h in u.responder_heads}
+        factors = SideFactors(w, tables[0], rotation, heads=scanned)
         for i, unit in pair_todo:
             commit(i, compute_unit(factors, unit, options))
+        del factors  # the per-layer factors and packed keys go before the next phase
+        return_freed()
+    if beyond_todo:  # writer groups, their OV profiles and references: in this process, every head's factors
+        factors = SideFactors(w, tables[0], rotation)
+        for i, unit in beyond_todo:
+            commit(i, compute_unit(factors, unit, options))
+        del factors
+        return_freed()
     space = ModelSpace(w)
     ks = tuple(int(k) for k in options.k)
+    last_head = max((i for i, u in final_todo if isinstance(u, HeadUnit)), default=None)
     for i, unit in final_todo:
-        if isinstance(unit, (GroupUnit, GroupHeadUnit, ReferenceUnit)):  # in this process, after the pairs
-            commit(i, compute_unit(factors, unit, options))
-        elif isinstance(unit, HeadUnit):
-            commit(i, ("heads", *profile_layer(w, table, unit.layer, unit.heads, ks, options.block_rows)))
+        if isinstance(unit, HeadUnit):  # the last head unit takes the table's last reference (and drops it)
+            commit(i, ("heads", *profile_layer(w, tables.pop() if i == last_head else tables[0], unit.layer,
+                                               unit.heads, ks, options.block_rows)))
         else:
             commit(i, ("model_space", *model_space_unit(space, unit.writer_layer)))
     group_attrs = {"heads": head_attrs(w, TableOptions(options.table, options.position), ks, options.fdr,
