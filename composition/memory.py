@@ -40,7 +40,20 @@ def resident_bytes() -> int:
 
 
 def peak_resident_bytes() -> int:
-    """The process's peak resident memory so far (``ru_maxrss``; kilobytes on Linux, bytes on macOS)."""
+    """The process's peak resident memory so far.
+
+    ``VmHWM`` of ``/proc/self/status`` where it exists: the peak of this process's own memory.
+    ``ru_maxrss`` (the fallback) is not that on Linux: it keeps the peak of the address space the
+    process replaced at ``exec``, so a child started by a large parent (``vfork``/``posix_spawn``)
+    reports the parent's size. (Common practice, no source: proc(5), getrusage(2).)
+    """
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     return int(peak if sys.platform == "darwin" else peak * 1024)
 

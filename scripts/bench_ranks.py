@@ -218,13 +218,14 @@ def write_gpt2_sized(directory: Path, seed: int = 0) -> Path:
 
 
 _CHILD = r"""
-import json, resource, sys, time
+import json, sys, time
+from composition.memory import peak_resident_bytes
 from composition.run.scan import ScanOptions, run_scan
 opts = ScanOptions(**json.loads(sys.argv[3]))
 t = time.perf_counter()
 run_scan(sys.argv[1], sys.argv[2], opts, overwrite=True)
 print(json.dumps({"seconds": time.perf_counter() - t,
-                  "peak_bytes": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))
+                  "peak_bytes": peak_resident_bytes()}))
 """
 
 
@@ -272,7 +273,7 @@ def main() -> None:
         print(f"  wall time {got['seconds']:.1f} s, plan said {p.total_seconds:.1f} s "
               f"(ratio {p.total_seconds / got['seconds']:.2f})")
         ratio = p.peak_bytes / got["peak_bytes"]
-        print(f"  peak RSS of the scan (ru_maxrss of the fresh process): {got['peak_bytes'] / 2**30:.2f} GiB "
+        print(f"  peak RSS of the scan (VmHWM of the fresh process): {got['peak_bytes'] / 2**30:.2f} GiB "
               f"(target <= 1.5 GiB)")
         print(f"  plan's estimate: {p.peak_bytes / 2**30:.2f} GiB; estimate / measured = {ratio:.2f} "
               f"(target 0.75-1.25)")

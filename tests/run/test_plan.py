@@ -57,7 +57,7 @@ print(peak_resident_bytes())
 
 def test_plan_memory_estimate_is_within_a_quarter_of_the_measured_peak(tmp_path):
     """The peak memory plan estimates for a scan is within +-25 % of the peak resident memory of the
-    same scan run in a fresh process (ru_maxrss). The model above the baseline is checked too: plan's
+    same scan run in a fresh process (VmHWM). The model above the baseline is checked too: plan's
     baseline (a fresh process that imported the tool, measured in a child of the same kind) is
     subtracted from both, and what remains must agree within a factor of 2 (at this size the fixed
     library buffers a scan adds, about 90 MiB, weigh as much as the tensors plan models; at GPT-2 size
