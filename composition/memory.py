@@ -27,16 +27,22 @@ def return_freed() -> None:
         pass
 
 
-def resident_bytes() -> int:
-    """The process's resident memory now (``VmRSS``; the peak where it cannot be read)."""
+def _status_bytes(key: str) -> int | None:
+    """A memory line of ``/proc/self/status`` (``VmRSS``, ``VmHWM``) in bytes; None where there is none."""
     try:
         with open("/proc/self/status") as f:
             for line in f:
-                if line.startswith("VmRSS:"):
+                if line.startswith(key + ":"):
                     return int(line.split()[1]) * 1024
     except OSError:
         pass
-    return peak_resident_bytes()
+    return None
+
+
+def resident_bytes() -> int:
+    """The process's resident memory now (``VmRSS``; the peak where it cannot be read)."""
+    now = _status_bytes("VmRSS")
+    return peak_resident_bytes() if now is None else now
 
 
 def peak_resident_bytes() -> int:
@@ -47,13 +53,9 @@ def peak_resident_bytes() -> int:
     process replaced at ``exec``, so a child started by a large parent (``vfork``/``posix_spawn``)
     reports the parent's size. (Common practice, no source: proc(5), getrusage(2).)
     """
-    try:
-        with open("/proc/self/status") as f:
-            for line in f:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
+    peak = _status_bytes("VmHWM")
+    if peak is not None:
+        return peak
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     return int(peak if sys.platform == "darwin" else peak * 1024)
 
