@@ -133,6 +133,15 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
             raise ScanInterrupted(
                 f"interrupted by {signal_name(stop.signum)} with {run.committed_note()}; "
                 "run the same command again to resume.", stop.signum) from None
+        except RuntimeError:
+            # A signal handler's exception raised inside a thread pool's wait can leave that wait's
+            # lock half released, and the error of releasing it then replaces the Interrupt; the
+            # file is valid either way (every commit is atomic), so a pending signal still wins.
+            if guard.pending is None:
+                raise
+            raise ScanInterrupted(
+                f"interrupted by {signal_name(guard.pending)} with {run.committed_note()}; "
+                "run the same command again to resume.", guard.pending) from None
         except ScanWriteError as exc:
             _clean_if_nothing_committed(out, run)
             raise CompositionError(
