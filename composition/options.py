@@ -20,7 +20,7 @@ import click
 from .compose import sides
 from .errors import CompositionError
 from .extract import FAMILIES
-from .extract.tables import TABLES
+from .extract.tables import TABLES, TableOptions
 from .score.ranks import DEVICES, PRECISIONS, check_device, check_precision
 from .score.sampling import DEFAULT_FIRST_ROWS, Sampling
 from .score.stats import DEFAULT_FDR, DEFAULT_K, DEFAULT_MIN_EFFECT
@@ -239,6 +239,10 @@ class ScanOptions:
     def sampling(self) -> Sampling:
         """Which rows each pair evaluates (composition.score.sampling)."""
         return Sampling(self.rows, self.seed, self.until_ci, self.first_rows)
+
+    def table_options(self) -> TableOptions:
+        """Which token table the scan reads (composition.extract.tables)."""
+        return TableOptions(self.table, self.position)
 
     def validate(self) -> None:
         """Every check of the options above that needs no model (``check_for_model`` does the rest)."""

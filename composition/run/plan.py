@@ -43,7 +43,7 @@ from ..extract.rotary import offsets_rotation
 from ..score.ranks import RowProduct, kernel_rate_entries, prepare_right, resolve_path
 from ..score.sampling import expected_rows
 from ..score.stats import summarise_many
-from ..extract.tables import TableOptions, token_table
+from ..extract.tables import token_table
 from ..extract.weights import Weights
 from .units import scan_pairs, work_units
 
@@ -143,7 +143,7 @@ def plan_scan(checkpoint, options, calibrate_seconds: float = 3.0) -> Plan:
     side = sides.get(options.side, options.query_part, options.orientation)
     n_sub = min(V, _SUBSET)
     w_sub = dataclasses.replace(w, W_E=w.W_E[:n_sub], W_U=w.W_U[:, :n_sub])
-    T_sub, t_table = _timed(token_table, w_sub, TableOptions(options.table, options.position))
+    T_sub, t_table = _timed(token_table, w_sub, options.table_options())
     first = units[0]
     sub = SideFactors(w_sub, T_sub, offsets_rotation(w, options.rotary_offsets))
     _, t_values = _timed(sub.values, first.writer[0])

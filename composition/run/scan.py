@@ -29,7 +29,7 @@ from .._version import __version__
 from ..errors import CompositionError
 from ..extract import load_weights
 from ..extract.rotary import offsets_rotation
-from ..extract.tables import TableOptions, release_table_inputs, table_inputs, token_table
+from ..extract.tables import release_table_inputs, table_inputs, token_table
 from ..extract.weights import Weights
 from ..compose.sides import SideFactors
 from ..interpret.heads import (ModelSpace, head_attrs, head_units, label_heads, model_space_attrs,
@@ -90,7 +90,6 @@ def run_scan(checkpoint: str | os.PathLike | Weights, out: str | os.PathLike, op
     pairs = scan_pairs(w, options)
     options = replace(options, writer_groups=writer_groups_for_model(options.writer_groups, w.n_layers, w.n_heads))
     ks = tuple(int(k) for k in options.k)
-    _check_model_options(w, options)
     extra = beyond_units(w, options, pairs)
     units = work_units(pairs) + extra + final_units(w, pairs) + [GroupHeadUnit(g, spec) for g, spec
                                                                  in enumerate(options.writer_groups)]
@@ -178,22 +177,11 @@ def beyond_units(w: Weights, options: ScanOptions, pairs) -> list:
     return units
 
 
-def _check_model_options(w: Weights, options: ScanOptions) -> None:
-    """Options whose bounds depend on the model, checked before the scan file exists (--k: in scan_pairs)."""
-    position = options.position
-    if isinstance(position, int) and not isinstance(position, bool):
-        if w.W_pos is None:
-            raise CompositionError(f"--position {position}: the model has no learned position table.")
-        if not 0 <= position < w.W_pos.shape[0]:
-            raise CompositionError(f"--position {position} is outside the model's position table "
-                                   f"(positions 0-{w.W_pos.shape[0] - 1}).")
-
-
 def _checked_table(w: Weights, options: ScanOptions):
     """The token table, refused with a sentence if it is not finite. # -> [V, d]"""
     import torch
 
-    T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
+    T = token_table(w, options.table_options())  # [V, d]
     if not all(bool(torch.isfinite(T[s:s + 4096]).all()) for s in range(0, T.shape[0], 4096)):  # no [V, d] temporary
         raise CompositionError(
             f"the token table of {w.source} ({options.table}) is not finite: check the config's norm epsilon "
@@ -256,7 +244,7 @@ def _complete(store: ScanStore, run: "_Run", guard: Guard, w: Weights, attrs: di
                                                unit.heads, ks, options.block_rows)))
         else:
             commit(i, ("model_space", *model_space_unit(space, unit.writer_layer)))
-    group_attrs = {"heads": head_attrs(w, TableOptions(options.table, options.position), ks, options.fdr,
+    group_attrs = {"heads": head_attrs(w, options.table_options(), ks, options.fdr,
                                        options.min_effect, attrs["weights_fingerprint"]),
                    "model_space": model_space_attrs(w)}
     with guard.critical():

@@ -21,7 +21,7 @@ from ..errors import CompositionError
 from ..options import check_for_model, parse_heads
 from ..compose.sides import Product, SideFactors
 from ..extract.rotary import offsets_rotation
-from ..extract.tables import TableOptions, token_table
+from ..extract.tables import token_table
 from ..extract.weights import Weights
 from ..score.ranks import RowProduct, prepare_right
 from ..score.sampling import evaluate_pairs
@@ -62,7 +62,7 @@ def work_units(pairs: list[tuple[Head, Head]]) -> list[WorkUnit]:
 
 def unit_factors(w: Weights, options) -> SideFactors:
     """What ``compute_unit`` needs besides the unit: built the same way here and on workers."""
-    T = token_table(w, TableOptions(options.table, options.position))  # [V, d]
+    T = token_table(w, options.table_options())  # [V, d]
     return SideFactors(w, T, offsets_rotation(w, options.rotary_offsets))
 
 
